@@ -1,0 +1,151 @@
+//! The one wiring place: starts the store, the optional embedded broker, the
+//! MQTT loop and the pipeline, and stops them in order.
+//!
+//! Shutdown order: stop reading MQTT -> the pipeline commits and
+//! acknowledges the batch in hand and exits -> the MQTT loop sends the last
+//! acknowledgements and disconnects -> the store checkpoints and exits last.
+
+use crate::clock::Clock;
+use crate::config::Config;
+use crate::ingest::mqtt;
+use crate::pipeline::{self, DecodeFacts, MqttReply};
+use crate::store::sqlite::{Durability, Sqlite};
+use crate::store::Store;
+use crate::telemetry::Counters;
+use anyhow::Context;
+use std::future::Future;
+use std::sync::Arc;
+use std::time::Duration;
+use tokio_util::sync::CancellationToken;
+
+/// Messages that may wait between the MQTT loop and the pipeline. When full
+/// the MQTT loop pauses and the broker holds the rest, unacknowledged.
+const PIPELINE_QUEUE: usize = 2048;
+
+/// A running service, for callers that need its parts (demo, tests).
+pub struct Running {
+    pub store: Store,
+    pub counters: Arc<Counters>,
+}
+
+/// Runs the daemon until `shutdown` completes. `on_start` is called once the
+/// parts are up (the demo starts its feed there).
+pub async fn run<F, S>(
+    cfg: Config,
+    clock: Arc<dyn Clock>,
+    shutdown: F,
+    on_start: S,
+) -> anyhow::Result<()>
+where
+    F: Future<Output = ()>,
+    S: FnOnce(&Running),
+{
+    for w in &cfg.warnings {
+        tracing::warn!(warning = %w, "Configuration");
+    }
+    if let Some(b) = &cfg.broker {
+        start_embedded_broker(b)?;
+        tracing::warn!(
+            listen = %b.listen,
+            "Embedded MQTT broker started. It keeps messages in memory only: what it holds is lost if outrider stops. Use an external broker (Mosquitto) for production; see docs/durability.md"
+        );
+    }
+    let backend = Sqlite::open(&cfg.service.state_dir, Durability::Full)
+        .with_context(|| format!("opening the store in {}", cfg.service.state_dir.display()))?;
+    let (store, store_thread) =
+        Store::start(Box::new(backend)).context("starting the store thread")?;
+    let counters = Arc::new(Counters::new());
+    let facts = Arc::new(DecodeFacts::from_config(&cfg));
+
+    let opts = mqtt::options(
+        &cfg.mqtt,
+        cfg.detection.max_payload_bytes.max(crate::MAX_WIRE_PAYLOAD),
+    )?;
+    let (client, eventloop) = mqtt::connect(opts);
+    let (tx, rx) = tokio::sync::mpsc::channel(PIPELINE_QUEUE);
+    let stop_reading = CancellationToken::new();
+    let pipeline_done = CancellationToken::new();
+
+    let reply = MqttReply {
+        client: client.clone(),
+        topic_prefix: cfg.mqtt.topic_prefix.clone(),
+    };
+    let pipeline_task = {
+        let (store, counters, clock, done) = (
+            store.clone(),
+            counters.clone(),
+            clock.clone(),
+            pipeline_done.clone(),
+        );
+        tokio::spawn(async move {
+            pipeline::run(rx, store, facts, clock, Some(reply), counters).await;
+            done.cancel();
+        })
+    };
+    let mqtt_task = tokio::spawn(mqtt::run(
+        client,
+        eventloop,
+        cfg.mqtt.topic_prefix.clone(),
+        tx,
+        counters.clone(),
+        stop_reading.clone(),
+        pipeline_done.clone(),
+    ));
+    tracing::info!(broker = %cfg.mqtt.url, state_dir = %cfg.service.state_dir.display(), sites = cfg.sites.sites.len(), subscribers = cfg.subscribers.len(), "outrider running");
+    on_start(&Running {
+        store: store.clone(),
+        counters: counters.clone(),
+    });
+
+    shutdown.await;
+    tracing::info!("Shutting down: finishing the batch in hand");
+    stop_reading.cancel();
+    let deadline = Duration::from_secs(cfg.service.shutdown_timeout_seconds);
+    if tokio::time::timeout(deadline, pipeline_task).await.is_err() {
+        tracing::warn!(
+            "Pipeline did not finish in time; its messages stay unacknowledged at the broker"
+        );
+        pipeline_done.cancel();
+    }
+    let _ = tokio::time::timeout(Duration::from_secs(1), mqtt_task).await;
+    drop(store);
+    // The store thread exits once every handle is gone; wait for it off the runtime.
+    let _ = tokio::task::spawn_blocking(move || store_thread.join()).await;
+    tracing::info!("Stopped");
+    Ok(())
+}
+
+#[cfg(feature = "embedded-broker")]
+fn start_embedded_broker(b: &crate::config::EmbeddedBroker) -> anyhow::Result<()> {
+    crate::ingest::broker::start(b)?;
+    Ok(())
+}
+
+#[cfg(not(feature = "embedded-broker"))]
+fn start_embedded_broker(_: &crate::config::EmbeddedBroker) -> anyhow::Result<()> {
+    anyhow::bail!("this outrider was built without the embedded broker (feature `embedded-broker`); remove [broker] embedded = true or rebuild with the feature")
+}
+
+/// Resolves on SIGINT or SIGTERM.
+pub async fn shutdown_signal() {
+    let ctrl_c = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        let mut term =
+            match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+                Ok(s) => s,
+                Err(_) => {
+                    let _ = ctrl_c.await;
+                    return;
+                }
+            };
+        tokio::select! {
+            _ = ctrl_c => {}
+            _ = term.recv() => {}
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = ctrl_c.await;
+    }
+}

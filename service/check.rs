@@ -1,0 +1,137 @@
+//! `outrider check`: a summary of a valid configuration for people: the
+//! sites, the subscribers, and which sites each subscriber's area covers.
+
+use crate::config::{AreaSpec, Config};
+use std::fmt::Write;
+
+/// Sites covered by a subscriber's area, with the distance shown on a
+/// notice (km from the circle's centre; 0 for site lists and `all`).
+pub fn covered(cfg: &Config, area: &AreaSpec) -> Vec<(String, f64)> {
+    let g = &::geo::Geodesic;
+    cfg.sites
+        .sites
+        .iter()
+        .filter_map(|s| match area {
+            AreaSpec::All => Some((s.deployment_id.clone(), 0.0)),
+            AreaSpec::Sites(list) => list
+                .contains(&s.deployment_id)
+                .then(|| (s.deployment_id.clone(), 0.0)),
+            AreaSpec::Circle {
+                lat,
+                lon,
+                radius_km,
+            } => {
+                use ::geo::Distance;
+                let d = g.distance(
+                    ::geo::Point::new(*lon, *lat),
+                    ::geo::Point::new(s.longitude, s.latitude),
+                ) / 1000.0;
+                (d <= *radius_km).then(|| (s.deployment_id.clone(), d))
+            }
+            AreaSpec::GeoJson { .. } => None,
+        })
+        .collect()
+}
+
+pub fn summary(cfg: &Config) -> String {
+    let mut o = String::new();
+    let _ = writeln!(o, "configuration {} is valid", cfg.path.display());
+    let _ = writeln!(
+        o,
+        "broker        {}{}",
+        cfg.mqtt.url,
+        if cfg.broker.is_some() {
+            " (embedded)"
+        } else {
+            ""
+        }
+    );
+    let _ = writeln!(o, "state         {}", cfg.service.state_dir.display());
+    let _ = writeln!(
+        o,
+        "sites         {} from {}",
+        cfg.sites.sites.len(),
+        cfg.sites.file.display()
+    );
+    let _ = writeln!(o, "subscribers   {}", cfg.subscribers.len());
+    for w in &cfg.warnings {
+        let _ = writeln!(o, "warning       {w}");
+    }
+    for s in &cfg.subscribers {
+        let _ = writeln!(o);
+        let _ = writeln!(
+            o,
+            "{} ({}), {} watch{}, digest at {} {}",
+            s.id,
+            s.name,
+            s.watches.len(),
+            if s.watches.len() == 1 { "" } else { "es" },
+            s.digest_at.format("%H:%M"),
+            s.timezone
+        );
+        let area = match &s.area {
+            AreaSpec::All => "all sites".to_string(),
+            AreaSpec::Sites(l) => format!("sites {}", l.join(", ")),
+            AreaSpec::Circle {
+                lat,
+                lon,
+                radius_km,
+            } => format!("{radius_km} km around {lat}, {lon}"),
+            AreaSpec::GeoJson { file, buffer_km } => {
+                format!("polygon {} + {buffer_km} km", file.display())
+            }
+        };
+        let _ = writeln!(o, "  area: {area}");
+        if matches!(s.area, AreaSpec::GeoJson { .. }) {
+            let _ = writeln!(o, "  covers: (polygon areas are not evaluated yet)");
+        } else {
+            let cov = covered(cfg, &s.area);
+            if cov.is_empty() {
+                let _ = writeln!(
+                    o,
+                    "  covers: no site (this subscriber would receive no detection notices)"
+                );
+            } else {
+                let list: Vec<String> = cov
+                    .iter()
+                    .map(|(id, d)| {
+                        if *d > 0.0 {
+                            format!("{id} ({d:.2} km)")
+                        } else {
+                            id.clone()
+                        }
+                    })
+                    .collect();
+                let _ = writeln!(
+                    o,
+                    "  covers {} site{}: {}",
+                    cov.len(),
+                    if cov.len() == 1 { "" } else { "s" },
+                    list.join(", ")
+                );
+            }
+        }
+        for w in &s.watches {
+            let species: Vec<&str> = w.species.iter().map(String::as_str).collect();
+            let ch: Vec<&str> = w.channels.iter().map(|c| c.as_str()).collect();
+            let _ = writeln!(
+                o,
+                "  watch \"{}\": {} {} hours {}{} -> {}",
+                w.name,
+                w.trigger.as_str(),
+                if species.is_empty() {
+                    "(any camera)".to_string()
+                } else {
+                    species.join(", ")
+                },
+                w.hours,
+                w.season
+                    .as_ref()
+                    .map(|s| format!(" season {s}"))
+                    .unwrap_or_default(),
+                ch.join(", ")
+            );
+        }
+    }
+    o
+}

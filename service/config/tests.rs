@@ -1,0 +1,323 @@
+//! Config validation: good files load, bad ones report every problem with
+//! file:line:col and a hint.
+
+use super::*;
+use std::collections::HashMap;
+
+const SITES: &str = "deploymentID,latitude,longitude,deploymentStart,deploymentEnd\nKB-01,-31.56,148.05,2026-01-01T00:00:00+11:00,\nKB-02,-31.64,148.14,2026-01-01T00:00:00+11:00,\n";
+
+fn parse_with(src: &str, env: &[(&str, &str)]) -> Result<Config, ConfigErrors> {
+    let env: HashMap<String, String> = env
+        .iter()
+        .map(|(k, v)| (k.to_string(), v.to_string()))
+        .collect();
+    let files = Files {
+        read: &|p: &Path| {
+            if p.ends_with("sites.csv") {
+                Ok(SITES.to_string())
+            } else if p.ends_with("secret.txt") {
+                Ok("s3cret\n".to_string())
+            } else {
+                Err(std::io::Error::new(
+                    std::io::ErrorKind::NotFound,
+                    "no such file",
+                ))
+            }
+        },
+        env: &move |k: &str| env.get(k).cloned(),
+    };
+    parse(Path::new("/etc/outrider/outrider.toml"), src, &[], &files)
+}
+
+fn errors(src: &str) -> Vec<ConfigError> {
+    match parse_with(src, &[]) {
+        Ok(_) => panic!("expected errors"),
+        Err(e) => e.0,
+    }
+}
+
+const GOOD: &str = r#"
+[service]
+state_dir = "state"
+timezone = "Australia/Sydney"
+
+[sites]
+file = "sites.csv"
+
+[species.groups]
+predators = ["Canis familiaris", "Vulpes vulpes"]
+
+[species.aliases]
+"Canis lupus dingo" = "Canis familiaris"
+
+[smtp]
+host = "127.0.0.1"
+security = "none"
+from = "outrider <n@kellerby.example>"
+
+[[subscriber]]
+id = "stonecroft"
+email = "owner@stonecroft.example"
+area = { lat = -31.56, lon = 148.05, radius_km = 6.0 }
+
+  [[subscriber.watch]]
+  trigger = "presence"
+  species = ["@predators", "Canis lupus dingo", "Sus scrofa"]
+  hours = "dusk-to-dawn"
+  channels = ["email"]
+"#;
+
+#[test]
+fn a_good_file_loads_with_defaults_filled_in() {
+    let cfg = parse_with(GOOD, &[]).expect("valid");
+    assert_eq!(cfg.service.state_dir, Path::new("/etc/outrider/state"));
+    assert_eq!(cfg.service.timezone, chrono_tz::Australia::Sydney);
+    assert_eq!(cfg.sites.sites.len(), 2);
+    assert_eq!(cfg.sites.silence_hours, 36.0);
+    assert_eq!(cfg.detection.independence_minutes, 30);
+    assert_eq!(cfg.mqtt.client_id, "outrider");
+    let s = &cfg.subscribers[0];
+    assert_eq!(s.name, "stonecroft");
+    assert_eq!(
+        s.timezone,
+        chrono_tz::Australia::Sydney,
+        "inherits [service] timezone"
+    );
+    let w = &s.watches[0];
+    let species: Vec<&str> = w.species.iter().map(String::as_str).collect();
+    assert_eq!(
+        species,
+        vec!["Canis familiaris", "Sus scrofa", "Vulpes vulpes"],
+        "group expanded, alias resolved, deduplicated"
+    );
+    assert_eq!(w.min_probability, 0.8, "default from [detection]");
+}
+
+#[test]
+fn every_problem_is_reported_at_once_with_its_place() {
+    let src = r#"[service]
+timezone = "Australia/Kellerby"
+
+[sites]
+file = "sites.csv"
+silence_hour = 36
+
+[detection]
+min_probability = 1.3
+
+[[subscriber]]
+id = "a"
+area = { lat = -31.5, lon = 148.0, radius_km = -1 }
+
+  [[subscriber.watch]]
+  trigger = "presence"
+  species = ["Vulpes vulpes"]
+
+  [[subscriber.watch]]
+  trigger = "presence"
+  species = ["Vulpes vulpes"]
+  channels = ["email"]
+"#;
+    let errs = errors(src);
+    let got: Vec<(usize, usize, &str)> = errs
+        .iter()
+        .map(|e| (e.line, e.col, e.key.as_str()))
+        .collect();
+    assert_eq!(
+        got,
+        vec![
+            (2, 12, "service.timezone"),
+            (6, 1, "sites.silence_hour"),
+            (9, 19, "detection.min_probability"),
+            (13, 48, "subscriber[1].area.radius_km"),
+            (15, 3, "subscriber[1].watch[1].channels"),
+            (22, 15, "subscriber[1].watch[2].channels"),
+        ],
+        "{errs:#?}"
+    );
+    let text: Vec<String> = errs.iter().map(|e| e.to_string()).collect();
+    assert!(text[0].starts_with("/etc/outrider/outrider.toml:2:12: service.timezone: `Australia/Kellerby` is not a known time zone (hint:"), "{}", text[0]);
+    assert!(
+        text[1].contains("did you mean `silence_hours`?"),
+        "{}",
+        text[1]
+    );
+    assert!(text[3].contains("-1 is out of range"), "{}", text[3]);
+    assert!(text[4].contains("is required but missing"), "{}", text[4]);
+    assert!(text[5].contains("no email address"), "{}", text[5]);
+}
+
+#[test]
+fn wrong_types_name_what_was_expected() {
+    let errs = errors("[sites]\nfile = 3\n[detection]\nindependence_minutes = \"30\"\n");
+    assert_eq!(errs.len(), 2, "{errs:#?}");
+    assert_eq!((errs[0].line, errs[0].key.as_str()), (2, "sites.file"));
+    assert!(errs[0]
+        .message
+        .contains("expected a string, found an integer"));
+    assert_eq!(
+        (errs[1].line, errs[1].key.as_str()),
+        (4, "detection.independence_minutes")
+    );
+}
+
+#[test]
+fn unknown_sections_and_bad_toml_are_caught() {
+    let errs = errors("[sites]\nfile = \"sites.csv\"\n[smpt]\nhost = \"x\"\n");
+    assert_eq!(errs.len(), 1);
+    assert_eq!(errs[0].key, "smpt");
+    assert_eq!(errs[0].hint.as_deref(), Some("did you mean `smtp`?"));
+
+    let errs = errors("[sites\nfile = 1\n");
+    assert_eq!(errs[0].line, 1);
+    assert!(errs[0].message.starts_with("not valid TOML"), "{}", errs[0]);
+}
+
+#[test]
+fn secrets_come_only_from_the_environment_or_a_file() {
+    let base = "[sites]\nfile = \"sites.csv\"\n[mqtt]\nusername = \"outrider\"\n";
+    let errs = errors(&format!("{base}password = \"hunter2\"\n"));
+    assert_eq!(errs.len(), 1);
+    assert!(errs[0]
+        .message
+        .contains("secrets are not written in the configuration file"));
+    assert!(
+        !errs[0].to_string().contains("hunter2"),
+        "the secret must not be echoed"
+    );
+
+    let errs = errors(&format!("{base}password_env = \"OUTRIDER_TEST_UNSET\"\n"));
+    assert!(errs[0].message.contains("OUTRIDER_TEST_UNSET is not set"));
+
+    let cfg = parse_with(
+        &format!("{base}password_env = \"PW\"\n"),
+        &[("PW", "from-env")],
+    )
+    .expect("valid");
+    assert_eq!(
+        cfg.mqtt.password.as_ref().map(Secret::expose),
+        Some("from-env")
+    );
+    assert_eq!(format!("{:?}", cfg.mqtt.password), "Some(Secret(***))");
+
+    let cfg = parse_with(&format!("{base}password_file = \"secret.txt\"\n"), &[]).expect("valid");
+    assert_eq!(
+        cfg.mqtt.password.as_ref().map(Secret::expose),
+        Some("s3cret")
+    );
+}
+
+#[test]
+fn channel_and_area_rules() {
+    let sub = |area: &str, watch: &str| {
+        format!("[sites]\nfile = \"sites.csv\"\n[[subscriber]]\nid = \"x\"\nemail = \"x@y.example\"\narea = {area}\n[[subscriber.watch]]\n{watch}\n")
+    };
+    // An email channel without [smtp] or [email_folder].
+    let errs = errors(&sub(
+        "\"all\"",
+        "trigger = \"silence\"\nchannels = [\"email\"]",
+    ));
+    assert!(errs[0].message.contains("no [smtp]"), "{}", errs[0]);
+    // A webhook channel without a webhook.
+    let errs = errors(&sub(
+        "\"all\"",
+        "trigger = \"silence\"\nchannels = [\"webhook\"]",
+    ));
+    assert!(errs[0].message.contains("no webhook"), "{}", errs[0]);
+    // An undefined group and a ratio on a presence watch.
+    let errs = errors(&sub(
+        "\"all\"",
+        "trigger = \"presence\"\nspecies = [\"@dogs\"]\nratio = 2.0\nchannels = [\"mqtt\"]",
+    ));
+    let msgs: Vec<&str> = errs.iter().map(|e| e.message.as_str()).collect();
+    assert_eq!(
+        msgs,
+        vec![
+            "group `@dogs` is not defined",
+            "applies only to spike and build-up watches, not presence"
+        ]
+    );
+    // A site list naming a deployment the sites file does not have.
+    let errs = errors(&sub(
+        "{ sites = [\"KB-01\", \"KB-99\"] }",
+        "trigger = \"silence\"\nchannels = [\"mqtt\"]",
+    ));
+    assert_eq!(errs.len(), 1, "{errs:?}");
+    assert!(
+        errs[0].message.contains("`KB-99` is not a deploymentID"),
+        "{errs:?}"
+    );
+    // Latitude out of range in a circle.
+    let errs = errors(&sub(
+        "{ lat = 148.0, lon = -31.5, radius_km = 5 }",
+        "trigger = \"silence\"\nchannels = [\"mqtt\"]",
+    ));
+    assert!(
+        errs[0]
+            .hint
+            .as_deref()
+            .is_some_and(|h| h.contains("swapped")),
+        "{errs:?}"
+    );
+}
+
+#[test]
+fn embedded_broker_beyond_loopback_needs_a_password() {
+    let errs = errors(
+        "[sites]\nfile = \"sites.csv\"\n[broker]\nembedded = true\nlisten = \"0.0.0.0:1883\"\n",
+    );
+    assert!(errs[0].message.contains("without a password"), "{errs:?}");
+    let ok = parse_with("[sites]\nfile = \"sites.csv\"\n[broker]\nembedded = true\nlisten = \"0.0.0.0:1883\"\nusername = \"u\"\npassword_env = \"BP\"\n", &[("BP", "x")]);
+    assert!(ok.is_ok());
+}
+
+#[test]
+fn scientific_names() {
+    for good in [
+        "Canis familiaris",
+        "Sus scrofa",
+        "Canis lupus dingo",
+        "Macropus",
+    ] {
+        assert!(looks_like_scientific_name(good), "{good}");
+    }
+    for bad in [
+        "canis familiaris",
+        "wild dog",
+        "Canis Familiaris",
+        "Canis  familiaris",
+        "",
+        "C",
+        "Sus scrofa\n",
+    ] {
+        assert!(!looks_like_scientific_name(bad), "{bad:?}");
+    }
+}
+
+mod properties {
+    use super::*;
+    use proptest::prelude::*;
+
+    proptest! {
+        /// Arbitrary text never panics the loader: it either loads or
+        /// reports errors that each point inside the file.
+        #[test]
+        fn arbitrary_text_never_panics(src in "(?s).{0,400}") {
+            if let Err(e) = parse_with(&src, &[]) {
+                let lines = src.lines().count().max(1) + 1;
+                for err in e.0 {
+                    prop_assert!(err.line <= lines);
+                }
+            }
+        }
+
+        /// Mutations of a good file never panic either.
+        #[test]
+        fn mutated_good_file_never_panics(pos in 0usize..GOOD.len(), insert in "[\\[\\]=\"a-z0-9 .\n-]{0,6}") {
+            let mut s = GOOD.to_string();
+            let p = (0..=pos).rev().find(|p| s.is_char_boundary(*p)).unwrap_or(0);
+            s.insert_str(p, &insert);
+            let _ = parse_with(&s, &[]);
+        }
+    }
+}

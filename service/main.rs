@@ -1,0 +1,101 @@
+//! The `outrider` binary: parses the command line, sets up logging, runs the
+//! command, and turns an error into a message and exit code 2.
+
+use clap::Parser;
+use outrider::cli::{Cli, Command};
+use outrider::clock::{Clock, SystemClock};
+use std::process::ExitCode;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    outrider::telemetry::init(cli.log_format);
+    // One TLS provider for every crate (see Cargo.toml).
+    let _ = rustls::crypto::ring::default_provider().install_default();
+    match run(cli.command) {
+        Ok(code) => code,
+        Err(err) => {
+            eprintln!("outrider: {err:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
+    Ok(tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()?)
+}
+
+fn load(path: &std::path::Path) -> anyhow::Result<outrider::config::Config> {
+    outrider::config::load(path).map_err(|e| anyhow::anyhow!("{e}"))
+}
+
+fn run(cmd: Command) -> anyhow::Result<ExitCode> {
+    match cmd {
+        Command::Run(a) => {
+            let cfg = load(&a.config)?;
+            runtime()?.block_on(outrider::app::run(
+                cfg,
+                std::sync::Arc::new(SystemClock),
+                outrider::app::shutdown_signal(),
+                |_| {},
+            ))?;
+        }
+        Command::Demo {
+            state_dir,
+            speed,
+            duration,
+            web,
+        } => {
+            if !(speed.is_finite() && speed > 0.0) {
+                anyhow::bail!(
+                    "--speed must be a positive number of simulated seconds per real second"
+                );
+            }
+            let opts = outrider::demo::DemoOptions {
+                state_dir,
+                speed,
+                duration_seconds: duration,
+                web,
+                history_days: 35,
+            };
+            runtime()?.block_on(outrider::demo::run(opts, SystemClock.now()))?;
+        }
+        Command::Check(a) => match outrider::config::load(&a.config) {
+            Ok(cfg) => print!("{}", outrider::check::summary(&cfg)),
+            Err(e) => {
+                eprint!("{e}");
+                return Ok(ExitCode::from(1));
+            }
+        },
+        Command::Status {
+            config,
+            state_dir,
+            json,
+        } => {
+            let (dir, cfg) = match (config, state_dir) {
+                (Some(c), _) => {
+                    let cfg = load(&c)?;
+                    (cfg.service.state_dir.clone(), Some(cfg))
+                }
+                (None, Some(d)) => {
+                    let beside = d.join("outrider.toml");
+                    let cfg = if beside.exists() {
+                        outrider::config::load(&beside).ok()
+                    } else {
+                        None
+                    };
+                    (d, cfg)
+                }
+                (None, None) => anyhow::bail!("give -c FILE or --state-dir DIR"),
+            };
+            let s = outrider::status::read(&dir, cfg.as_ref(), SystemClock.now())?;
+            if json {
+                println!("{}", serde_json::to_string_pretty(&s)?);
+            } else {
+                print!("{}", outrider::status::render_text(&s));
+            }
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}

@@ -1,0 +1,238 @@
+//! The pipeline task: takes raw MQTT messages, decodes them (pure), commits
+//! them to the store in batches, and only then acknowledges them to the
+//! broker and publishes rejections to `P/_rejected`.
+//!
+//! Batching is natural: the first message is awaited, then whatever else is
+//! already waiting (up to [`MAX_BATCH`]) joins the same transaction. Under
+//! light load every message commits alone and at once; under heavy load a
+//! commit carries many. Nothing is acknowledged before its commit.
+
+use crate::clock::Clock;
+use crate::config::Config;
+use crate::ingest::decode::{decode, DecodeContext};
+use crate::model::ObservationType;
+use crate::store::{Ingest, Outcome, Store};
+use crate::telemetry::Counters;
+use chrono::{DateTime, Duration, Utc};
+use std::collections::HashMap;
+use std::sync::Arc;
+use tokio::sync::mpsc;
+
+/// Most messages in one transaction.
+pub const MAX_BATCH: usize = 512;
+
+/// A message as it came off the wire, with what is needed to acknowledge it.
+pub struct Inbound {
+    pub topic: String,
+    pub payload: bytes::Bytes,
+    /// The broker's packet, to acknowledge after commit (None when the
+    /// message did not come from MQTT, e.g. in tests).
+    pub publish: Option<rumqttc::Publish>,
+}
+
+/// Sends acknowledgements and `_rejected` reports back through MQTT.
+#[derive(Clone)]
+pub struct MqttReply {
+    pub client: rumqttc::AsyncClient,
+    pub topic_prefix: String,
+}
+
+/// Static facts the decoder needs, built once from the config.
+pub struct DecodeFacts {
+    pub topic_prefix: String,
+    pub deployments: HashMap<String, DateTime<Utc>>,
+    pub species: crate::config::Species,
+    pub max_payload_bytes: usize,
+    pub future_tolerance: Duration,
+}
+
+impl DecodeFacts {
+    pub fn from_config(cfg: &Config) -> Self {
+        Self {
+            topic_prefix: cfg.mqtt.topic_prefix.clone(),
+            deployments: cfg
+                .sites
+                .sites
+                .iter()
+                .map(|s| (s.deployment_id.clone(), s.deployment_start))
+                .collect(),
+            species: cfg.species.clone(),
+            max_payload_bytes: cfg.detection.max_payload_bytes,
+            future_tolerance: Duration::minutes(cfg.detection.future_tolerance_minutes as i64),
+        }
+    }
+}
+
+/// Decodes one inbound message into what the store should commit.
+pub fn to_ingest(facts: &DecodeFacts, topic: &str, payload: &[u8], now: DateTime<Utc>) -> Ingest {
+    let ctx = DecodeContext {
+        topic_prefix: &facts.topic_prefix,
+        deployments: &facts.deployments,
+        species: &facts.species,
+        now,
+        max_payload_bytes: facts.max_payload_bytes,
+        future_tolerance: facts.future_tolerance,
+    };
+    match decode(topic, payload, &ctx) {
+        Ok(message) => Ingest::Message {
+            message,
+            received_at: now,
+        },
+        Err(rejection) => Ingest::Rejected {
+            topic: topic.to_string(),
+            payload: kept_payload(payload, facts.max_payload_bytes),
+            payload_bytes: payload.len(),
+            rejection,
+            received_at: now,
+        },
+    }
+}
+
+/// What of a rejected payload is kept: at most the payload limit, and for a
+/// message that says it shows a person or vehicle, only its identifying keys
+/// (the privacy rule holds for bad messages too).
+pub fn kept_payload(payload: &[u8], limit: usize) -> Vec<u8> {
+    let cut = &payload[..payload.len().min(limit)];
+    if let Ok(serde_json::Value::Object(map)) = serde_json::from_slice::<serde_json::Value>(cut) {
+        let private = map
+            .get("observationType")
+            .and_then(|v| v.as_str())
+            .and_then(ObservationType::parse)
+            .is_some_and(ObservationType::is_private);
+        if private {
+            let kept: serde_json::Map<String, serde_json::Value> = map
+                .into_iter()
+                .filter(|(k, _)| {
+                    matches!(
+                        k.as_str(),
+                        "observationID" | "deploymentID" | "eventStart" | "observationType"
+                    )
+                })
+                .collect();
+            return serde_json::to_vec(&kept).unwrap_or_default();
+        }
+    }
+    cut.to_vec()
+}
+
+/// Runs until `rx` closes (every sender dropped), then returns after the
+/// batch in hand is committed and acknowledged.
+pub async fn run(
+    mut rx: mpsc::Receiver<Inbound>,
+    store: Store,
+    facts: Arc<DecodeFacts>,
+    clock: Arc<dyn Clock>,
+    reply: Option<MqttReply>,
+    counters: Arc<Counters>,
+) {
+    let mut batch: Vec<Inbound> = Vec::with_capacity(MAX_BATCH);
+    loop {
+        let Some(first) = rx.recv().await else { break };
+        batch.push(first);
+        while batch.len() < MAX_BATCH {
+            match rx.try_recv() {
+                Ok(m) => batch.push(m),
+                Err(_) => break,
+            }
+        }
+        let now = clock.now();
+        let ingests: Vec<Ingest> = batch
+            .iter()
+            .map(|m| to_ingest(&facts, &m.topic, &m.payload, now))
+            .collect();
+        let started = std::time::Instant::now();
+        let outcomes = commit_until_done(&store, ingests.clone(), &counters).await;
+        let Some(outcomes) = outcomes else {
+            // The store stopped for good: leave everything unacknowledged.
+            tracing::error!("Store stopped; messages stay with the broker");
+            break;
+        };
+        counters.observe_commit(started.elapsed(), batch.len());
+        for ((m, ingest), outcome) in batch.drain(..).zip(ingests.iter()).zip(outcomes.iter()) {
+            counters.count(ingest, outcome);
+            if let Some(reply) = &reply {
+                let rejection = match (ingest, outcome) {
+                    (Ingest::Rejected { rejection, .. }, _) => Some(rejection),
+                    (_, Outcome::Rejected(r)) => Some(r),
+                    _ => None,
+                };
+                if let Some(r) = rejection {
+                    tracing::warn!(topic = %crate::ingest::decode::printable(&m.topic), reason = %r.reason, detail = %r.detail, "Rejected message");
+                    let report = rejection_report(&m.topic, &m.payload, facts.max_payload_bytes, r);
+                    let topic = format!("{}/_rejected", reply.topic_prefix);
+                    // Best effort: the rejection is already stored.
+                    if let Err(error) =
+                        reply
+                            .client
+                            .try_publish(topic, rumqttc::QoS::AtLeastOnce, false, report)
+                    {
+                        tracing::warn!(%error, "Could not publish a rejection report");
+                    }
+                }
+                if let Some(publish) = &m.publish {
+                    if let Err(error) = reply.client.ack(publish).await {
+                        tracing::warn!(%error, "Could not acknowledge; the broker will redeliver");
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Commits, retrying transient failures (full disk, locked file) with
+/// back-off up to 30 s between tries; while it retries nothing is acked.
+async fn commit_until_done(
+    store: &Store,
+    batch: Vec<Ingest>,
+    counters: &Counters,
+) -> Option<Vec<Outcome>> {
+    let mut delay = std::time::Duration::from_millis(250);
+    loop {
+        match store.commit(batch.clone()).await {
+            Ok(o) => {
+                counters.set_store_writable(true);
+                return Some(o);
+            }
+            Err(e) if e.is_transient() => {
+                counters.set_store_writable(false);
+                tracing::error!(error = %e, retry_in_ms = delay.as_millis() as u64, "Store cannot take writes; not acknowledging until it can");
+                tokio::time::sleep(delay).await;
+                delay = (delay * 2).min(std::time::Duration::from_secs(30));
+            }
+            Err(e) => {
+                counters.set_store_writable(false);
+                tracing::error!(error = %e, "Store failed");
+                return None;
+            }
+        }
+    }
+}
+
+/// The JSON published on `P/_rejected`: the original topic and payload (as
+/// text when it is UTF-8, else base64-free hex), the reason and the detail.
+pub fn rejection_report(
+    topic: &str,
+    payload: &[u8],
+    limit: usize,
+    r: &crate::model::Rejection,
+) -> Vec<u8> {
+    let kept = kept_payload(payload, limit);
+    let payload_value = match std::str::from_utf8(&kept) {
+        Ok(s) => serde_json::Value::String(s.to_string()),
+        Err(_) => serde_json::Value::String(kept.iter().map(|b| format!("{b:02x}")).collect()),
+    };
+    let encoding = if std::str::from_utf8(&kept).is_ok() {
+        "utf-8"
+    } else {
+        "hex"
+    };
+    serde_json::to_vec(&serde_json::json!({
+        "topic": topic,
+        "reason": r.reason.as_str(),
+        "detail": r.detail,
+        "payload": payload_value,
+        "payloadEncoding": encoding,
+        "payloadBytes": payload.len(),
+    }))
+    .unwrap_or_default()
+}

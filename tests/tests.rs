@@ -1,0 +1,10 @@
+//! Integration tests: the real binary, a real broker (embedded or
+//! Mosquitto), an independent MQTT client (paho-mqtt), a real SQLite file.
+//! `tests/util.rs` is the harness.
+
+// Test code may unwrap: a panic is a failed test with its message.
+#![allow(clippy::unwrap_used)]
+
+mod config_examples;
+mod ingest;
+mod util;
