@@ -22,6 +22,30 @@ use tokio_util::sync::CancellationToken;
 /// the MQTT loop pauses and the broker holds the rest, unacknowledged.
 const PIPELINE_QUEUE: usize = 2048;
 
+/// How often the time-driven checks (silent cameras) run.
+const TICK_EVERY: Duration = Duration::from_secs(1);
+
+/// The engine, warmed with the stored history it needs (its horizon), so a
+/// restart needs no full rebuild.
+async fn warm_engine(
+    cfg: &Config,
+    store: &Store,
+    now: chrono::DateTime<chrono::Utc>,
+) -> anyhow::Result<crate::engine::Engine> {
+    let started = std::time::Instant::now();
+    let mut engine = crate::engine::Engine::new(Arc::new(cfg.clone()));
+    let since = now - engine.horizon();
+    let history = store.with(move |b| b.history(since)).await??;
+    let n = history.len();
+    engine.warm(history.iter());
+    tracing::info!(
+        messages = n,
+        took_ms = started.elapsed().as_millis() as u64,
+        "Engine warmed from the store"
+    );
+    Ok(engine)
+}
+
 /// A running service, for callers that need its parts (demo, tests).
 pub struct Running {
     pub store: Store,
@@ -55,6 +79,7 @@ where
     let (store, store_thread) =
         Store::start(Box::new(backend)).context("starting the store thread")?;
     let counters = Arc::new(Counters::new());
+    let engine = warm_engine(&cfg, &store, clock.now()).await?;
     let facts = Arc::new(DecodeFacts::from_config(&cfg));
 
     let opts = mqtt::options(
@@ -63,11 +88,15 @@ where
     )?;
     let (client, eventloop) = mqtt::connect(opts);
     let (tx, rx) = tokio::sync::mpsc::channel(PIPELINE_QUEUE);
+    // Acknowledgements from the pipeline to the MQTT loop. The loop always
+    // drains this channel, so the pipeline waits here only briefly.
+    let (ack_tx, ack_rx) = tokio::sync::mpsc::channel(PIPELINE_QUEUE);
     let stop_reading = CancellationToken::new();
     let pipeline_done = CancellationToken::new();
 
     let reply = MqttReply {
         client: client.clone(),
+        acks: ack_tx,
         topic_prefix: cfg.mqtt.topic_prefix.clone(),
     };
     let pipeline_task = {
@@ -78,7 +107,17 @@ where
             pipeline_done.clone(),
         );
         tokio::spawn(async move {
-            pipeline::run(rx, store, facts, clock, Some(reply), counters).await;
+            pipeline::run(
+                rx,
+                store,
+                facts,
+                engine,
+                clock,
+                Some(reply),
+                counters,
+                TICK_EVERY,
+            )
+            .await;
             done.cancel();
         })
     };
@@ -87,6 +126,7 @@ where
         eventloop,
         cfg.mqtt.topic_prefix.clone(),
         tx,
+        ack_rx,
         counters.clone(),
         stop_reading.clone(),
         pipeline_done.clone(),

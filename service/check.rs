@@ -1,39 +1,29 @@
 //! `outrider check`: a summary of a valid configuration for people: the
-//! sites, the subscribers, and which sites each subscriber's area covers.
+//! sites, the subscribers, and which sites each subscriber's area covers,
+//! with the distance a notice would show.
 
 use crate::config::{AreaSpec, Config};
+use crate::geo::{LatLon, SiteIndex};
 use std::fmt::Write;
 
-/// Sites covered by a subscriber's area, with the distance shown on a
-/// notice (km from the circle's centre; 0 for site lists and `all`).
-pub fn covered(cfg: &Config, area: &AreaSpec) -> Vec<(String, f64)> {
-    let g = &::geo::Geodesic;
-    cfg.sites
+/// The sites of `cfg` as an R-tree index (sites with impossible
+/// coordinates were refused when the config loaded).
+pub fn site_index(cfg: &Config) -> SiteIndex {
+    let sites: Vec<(String, LatLon)> = cfg
+        .sites
         .sites
         .iter()
-        .filter_map(|s| match area {
-            AreaSpec::All => Some((s.deployment_id.clone(), 0.0)),
-            AreaSpec::Sites(list) => list
-                .contains(&s.deployment_id)
-                .then(|| (s.deployment_id.clone(), 0.0)),
-            AreaSpec::Circle {
-                lat,
-                lon,
-                radius_km,
-            } => {
-                use ::geo::Distance;
-                let d = g.distance(
-                    ::geo::Point::new(*lon, *lat),
-                    ::geo::Point::new(s.longitude, s.latitude),
-                ) / 1000.0;
-                (d <= *radius_km).then(|| (s.deployment_id.clone(), d))
-            }
-            AreaSpec::GeoJson { .. } => None,
+        .filter_map(|s| {
+            LatLon::new(s.latitude, s.longitude)
+                .ok()
+                .map(|p| (s.deployment_id.clone(), p))
         })
-        .collect()
+        .collect();
+    SiteIndex::new(&sites)
 }
 
 pub fn summary(cfg: &Config) -> String {
+    let index = site_index(cfg);
     let mut o = String::new();
     let _ = writeln!(o, "configuration {} is valid", cfg.path.display());
     let _ = writeln!(
@@ -69,7 +59,7 @@ pub fn summary(cfg: &Config) -> String {
             s.digest_at.format("%H:%M"),
             s.timezone
         );
-        let area = match &s.area {
+        let area = match &s.area_spec {
             AreaSpec::All => "all sites".to_string(),
             AreaSpec::Sites(l) => format!("sites {}", l.join(", ")),
             AreaSpec::Circle {
@@ -82,34 +72,35 @@ pub fn summary(cfg: &Config) -> String {
             }
         };
         let _ = writeln!(o, "  area: {area}");
-        if matches!(s.area, AreaSpec::GeoJson { .. }) {
-            let _ = writeln!(o, "  covers: (polygon areas are not evaluated yet)");
+        // Index order is the sites file's order.
+        let cov = index.coverage_of(&s.area);
+        if cov.is_empty() {
+            let _ = writeln!(
+                o,
+                "  covers: no site (this subscriber would receive no detection notices)"
+            );
         } else {
-            let cov = covered(cfg, &s.area);
-            if cov.is_empty() {
-                let _ = writeln!(
-                    o,
-                    "  covers: no site (this subscriber would receive no detection notices)"
-                );
-            } else {
-                let list: Vec<String> = cov
-                    .iter()
-                    .map(|(id, d)| {
-                        if *d > 0.0 {
-                            format!("{id} ({d:.2} km)")
-                        } else {
-                            id.clone()
-                        }
-                    })
-                    .collect();
-                let _ = writeln!(
-                    o,
-                    "  covers {} site{}: {}",
-                    cov.len(),
-                    if cov.len() == 1 { "" } else { "s" },
-                    list.join(", ")
-                );
-            }
+            let list: Vec<String> = cov
+                .iter()
+                .map(|(i, d)| {
+                    let id = &cfg.sites.sites[*i].deployment_id;
+                    if matches!(
+                        s.area_spec,
+                        AreaSpec::Circle { .. } | AreaSpec::GeoJson { .. }
+                    ) {
+                        format!("{id} ({d:.2} km)")
+                    } else {
+                        id.clone()
+                    }
+                })
+                .collect();
+            let _ = writeln!(
+                o,
+                "  covers {} site{}: {}",
+                cov.len(),
+                if cov.len() == 1 { "" } else { "s" },
+                list.join(", ")
+            );
         }
         for w in &s.watches {
             let species: Vec<&str> = w.species.iter().map(String::as_str).collect();

@@ -65,4 +65,31 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Copy the store to a file, safely while the daemon runs; check the
+    /// copy and print its row counts.
+    Backup {
+        /// The configuration file (gives the state directory).
+        #[arg(
+            short = 'c',
+            long = "config",
+            value_name = "FILE",
+            conflicts_with = "state_dir",
+            required_unless_present = "state_dir"
+        )]
+        config: Option<PathBuf>,
+        /// The state directory itself: no config needed, so no secrets in
+        /// the environment either.
+        #[arg(long, value_name = "DIR")]
+        state_dir: Option<PathBuf>,
+        /// The backup file to write.
+        #[arg(long, value_name = "PATH")]
+        to: PathBuf,
+        /// Replace PATH if it exists.
+        #[arg(long)]
+        force: bool,
+        /// Database pages copied per step (the daemon's commits go ahead
+        /// between steps).
+        #[arg(long, value_name = "N", default_value_t = 256, value_parser = clap::value_parser!(i32).range(1..))]
+        pages_per_step: i32,
+    },
 }

@@ -9,6 +9,16 @@
 //!   problem reported at once with file:line:col ([`config::load`] is the one
 //!   function there that reads files).
 //! - [`ingest::decode`]: topic + bytes -> message or rejection.
+//! - [`activity`]: independent events, effort, baselines, spike and
+//!   build-up tests (METHODS.md 1-4, 7).
+//! - [`geo`]: geodesic distance, GeoJSON areas, site coverage (R-tree),
+//!   civil dusk and dawn (METHODS.md 5, 6).
+//! - [`calendar`]: local time windows, seasons, DST-safe schedules.
+//! - [`notify`]: the notice model, fatigue control, retry schedule, signed
+//!   tokens, and the email text/HTML renderers.
+//!
+//! - [`engine`]: the one core the daemon and replay both run: messages in,
+//!   event changes and notice decisions out.
 //!
 //! I/O shells, thin, wired together only in [`app`]:
 //! - [`ingest::mqtt`]: the MQTT client loop (QoS 1, persistent session,
@@ -17,18 +27,27 @@
 //! - [`store`]: the [`store::Store`] handle over one SQLite connection owned
 //!   by one thread.
 //! - [`pipeline`]: batches decoded messages into store commits, then acks.
+//! - [`deliver`]: the email (SMTP), mail-folder and webhook senders; each
+//!   says whether a failure is retriable.
 //! - [`demo`]: the invented district's synthetic feed.
 //! - [`app`]: starts and stops the tasks in order.
+//! - [`backup`]: `outrider backup`, a checked online copy of the store.
 
 pub mod activity;
 pub mod app;
+pub mod backup;
+pub mod calendar;
 pub mod check;
 pub mod cli;
 pub mod clock;
 pub mod config;
+pub mod deliver;
 pub mod demo;
+pub mod engine;
+pub mod geo;
 pub mod ingest;
 pub mod model;
+pub mod notify;
 pub mod pipeline;
 pub mod status;
 pub mod store;

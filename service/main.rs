@@ -96,6 +96,25 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
                 print!("{}", outrider::status::render_text(&s));
             }
         }
+        Command::Backup {
+            config,
+            state_dir,
+            to,
+            force,
+            pages_per_step,
+        } => {
+            let dir = match (config, state_dir) {
+                (Some(c), _) => load(&c)?.service.state_dir,
+                (None, Some(d)) => d,
+                (None, None) => anyhow::bail!("give -c FILE or --state-dir DIR"),
+            };
+            let opts = outrider::backup::Options {
+                pages_per_step,
+                ..Default::default()
+            };
+            let report = outrider::backup::run(&dir, &to, force, &opts)?;
+            print!("{}", outrider::backup::render_text(&report));
+        }
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -9,6 +9,7 @@
 
 use crate::clock::Clock;
 use crate::config::Config;
+use crate::engine::{Engine, Output};
 use crate::ingest::decode::{decode, DecodeContext};
 use crate::model::ObservationType;
 use crate::store::{Ingest, Outcome, Store};
@@ -30,10 +31,13 @@ pub struct Inbound {
     pub publish: Option<rumqttc::Publish>,
 }
 
-/// Sends acknowledgements and `_rejected` reports back through MQTT.
+/// Where acknowledgements and `_rejected` reports go: acknowledgements to
+/// the MQTT loop (which alone may send them, see `ingest::mqtt::run`),
+/// reports straight into the client.
 #[derive(Clone)]
 pub struct MqttReply {
     pub client: rumqttc::AsyncClient,
+    pub acks: mpsc::Sender<rumqttc::Publish>,
     pub topic_prefix: String,
 }
 
@@ -117,17 +121,33 @@ pub fn kept_payload(payload: &[u8], limit: usize) -> Vec<u8> {
 
 /// Runs until `rx` closes (every sender dropped), then returns after the
 /// batch in hand is committed and acknowledged.
+#[allow(clippy::too_many_arguments)]
 pub async fn run(
     mut rx: mpsc::Receiver<Inbound>,
     store: Store,
     facts: Arc<DecodeFacts>,
+    mut engine: Engine,
     clock: Arc<dyn Clock>,
     reply: Option<MqttReply>,
     counters: Arc<Counters>,
+    tick_every: std::time::Duration,
 ) {
     let mut batch: Vec<Inbound> = Vec::with_capacity(MAX_BATCH);
+    let mut ticker = tokio::time::interval(tick_every);
+    ticker.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     loop {
-        let Some(first) = rx.recv().await else { break };
+        let first = tokio::select! {
+            m = rx.recv() => m,
+            _ = ticker.tick() => {
+                // Time-driven checks (silent cameras).
+                let derived = engine.tick(clock.now());
+                if !derived.is_empty() && commit_until_done(&store, Vec::new(), derived, &counters).await.is_none() {
+                    break;
+                }
+                continue;
+            }
+        };
+        let Some(first) = first else { break };
         batch.push(first);
         while batch.len() < MAX_BATCH {
             match rx.try_recv() {
@@ -140,14 +160,27 @@ pub async fn run(
             .iter()
             .map(|m| to_ingest(&facts, &m.topic, &m.payload, now))
             .collect();
+        let mut derived = Vec::new();
+        for ingest in &ingests {
+            if let Ingest::Message { message, .. } = ingest {
+                derived.extend(engine.apply(message, now));
+            }
+        }
+        let notices = derived
+            .iter()
+            .filter(|d| matches!(d, Output::Notice { .. }))
+            .count();
         let started = std::time::Instant::now();
-        let outcomes = commit_until_done(&store, ingests.clone(), &counters).await;
+        let outcomes = commit_until_done(&store, ingests.clone(), derived, &counters).await;
         let Some(outcomes) = outcomes else {
             // The store stopped for good: leave everything unacknowledged.
             tracing::error!("Store stopped; messages stay with the broker");
             break;
         };
         counters.observe_commit(started.elapsed(), batch.len());
+        if notices > 0 {
+            tracing::debug!(notices, "Notice decisions committed");
+        }
         for ((m, ingest), outcome) in batch.drain(..).zip(ingests.iter()).zip(outcomes.iter()) {
             counters.count(ingest, outcome);
             if let Some(reply) = &reply {
@@ -169,9 +202,9 @@ pub async fn run(
                         tracing::warn!(%error, "Could not publish a rejection report");
                     }
                 }
-                if let Some(publish) = &m.publish {
-                    if let Err(error) = reply.client.ack(publish).await {
-                        tracing::warn!(%error, "Could not acknowledge; the broker will redeliver");
+                if let Some(publish) = m.publish {
+                    if reply.acks.send(publish).await.is_err() {
+                        tracing::warn!("MQTT loop gone; the broker will redeliver");
                     }
                 }
             }
@@ -184,11 +217,12 @@ pub async fn run(
 async fn commit_until_done(
     store: &Store,
     batch: Vec<Ingest>,
+    derived: Vec<Output>,
     counters: &Counters,
 ) -> Option<Vec<Outcome>> {
     let mut delay = std::time::Duration::from_millis(250);
     loop {
-        match store.commit(batch.clone()).await {
+        match store.commit(batch.clone(), derived.clone()).await {
             Ok(o) => {
                 counters.set_store_writable(true);
                 return Some(o);

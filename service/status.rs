@@ -66,6 +66,11 @@ pub fn render_text(s: &StatusCounts) -> String {
         out.push_str(&format!("  {reason:<22}{n}\n"));
     }
     out.push_str(&format!("independent events    {}\n", s.events));
+    let notices: u64 = s.notices.values().sum();
+    out.push_str(&format!("notices               {notices}\n"));
+    for (d, n) in &s.notices {
+        out.push_str(&format!("  {d:<22}{n}\n"));
+    }
     out.push_str(&format!("outbox pending        {}\n", s.outbox_pending));
     out.push_str(&format!("deployments silent    {}\n", s.deployments_silent));
     out

@@ -310,3 +310,37 @@ fn kill_9_mid_burst_loses_nothing() {
     let (exit, _) = daemon.stop();
     assert!(exit.success());
 }
+
+/// Regression: a backlog larger than every internal queue (pipeline 2,048,
+/// client requests 8,192) drains completely. Before the acknowledgements
+/// were moved into the MQTT loop, the pipeline waited on a full request
+/// queue while the loop waited on a full pipeline, and ingest stopped.
+#[test]
+fn backlog_larger_than_every_queue_drains() {
+    let dir = tempfile::tempdir().unwrap();
+    let mosquitto = Mosquitto::start(dir.path());
+    let cfg = write_config(dir.path(), mosquitto.port, false, "");
+    // Create the persistent session, then go away so the broker queues.
+    let mut daemon = Daemon::start(&cfg);
+    daemon.stop();
+    let base = SystemClock.now() - Duration::days(10);
+    let msgs: Vec<Msg> = (0..12_000)
+        .map(|i| observation(i, base + Duration::seconds(i as i64 * 20)))
+        .collect();
+    let corpus_file = dir.path().join("backlog.jsonl");
+    write_corpus(&corpus_file, &msgs);
+    let result = publish_corpus(mosquitto.port, &corpus_file, 0, "backlogpublisher");
+    assert_eq!(result["published"], 12_000);
+    daemon.restart();
+    let s = wait_for(
+        std::time::Duration::from_secs(120),
+        "the 12,000-message backlog to drain",
+        || {
+            let s = status(&cfg);
+            (n(&s, "observations_stored") >= 12_000).then_some(s)
+        },
+    );
+    assert_eq!(n(&s, "observations_stored"), 12_000, "{s}");
+    let (exit, _) = daemon.stop();
+    assert!(exit.success());
+}

@@ -6,5 +6,7 @@
 #![allow(clippy::unwrap_used)]
 
 mod config_examples;
+mod delivery;
+mod deploy;
 mod ingest;
 mod util;

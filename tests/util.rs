@@ -79,7 +79,7 @@ impl Mosquitto {
         // persistence on, no queue limit (the default of 1000 silently drops
         // QoS 1 messages for an offline subscriber).
         let conf = format!(
-            "listener {port} 127.0.0.1\nallow_anonymous true\npersistence true\npersistence_location {}/\nmax_queued_messages 0\nmax_inflight_messages 100\nautosave_on_changes true\nautosave_interval 1\nlog_dest file {}/mosquitto.log\n",
+            "listener {port} 127.0.0.1\nuser root\nallow_anonymous true\npersistence true\npersistence_location {}/\nmax_queued_messages 0\nmax_inflight_messages 100\nautosave_on_changes true\nautosave_interval 1\nlog_dest file {}/mosquitto.log\n",
             dir.display(),
             dir.display()
         );

@@ -15,6 +15,8 @@ mod walk;
 pub use error::{ConfigError, ConfigErrors};
 pub use sites::Site;
 
+use crate::calendar::{Hours, LocalHours, Season};
+use crate::geo::{Area, Circle, LatLon, PolygonArea};
 use chrono::NaiveTime;
 use chrono_tz::Tz;
 use error::Reporter;
@@ -194,10 +196,13 @@ pub struct Subscriber {
     pub email: Option<String>,
     pub timezone: Tz,
     pub digest_at: NaiveTime,
-    /// `HH:MM-HH:MM` local, as written.
-    pub quiet_hours: Option<String>,
+    /// Local window in which non-urgent notices wait for the digest.
+    pub quiet_hours: Option<LocalHours>,
     pub max_per_hour: u32,
-    pub area: AreaSpec,
+    /// The area as written (for people).
+    pub area_spec: AreaSpec,
+    /// The area, built (GeoJSON read and checked).
+    pub area: Area,
     pub webhook: Option<Webhook>,
     pub watches: Vec<Watch>,
 }
@@ -259,10 +264,8 @@ pub struct Watch {
     pub trigger: TriggerKind,
     /// Scientific names, groups expanded and aliases resolved.
     pub species: BTreeSet<String>,
-    /// `any`, `HH:MM-HH:MM` or `dusk-to-dawn`, as written.
-    pub hours: String,
-    /// `MM-DD..MM-DD`, as written.
-    pub season: Option<String>,
+    pub hours: Hours,
+    pub season: Option<Season>,
     pub min_probability: f64,
     pub cooldown_minutes: u32,
     pub urgent: bool,
@@ -474,7 +477,7 @@ pub fn parse(
     let known: BTreeSet<&str> = sites.iter().map(|s| s.deployment_id.as_str()).collect();
     if !sites.is_empty() {
         for (s, _, file) in &subscribers {
-            if let AreaSpec::Sites(list) = &s.area {
+            if let AreaSpec::Sites(list) = &s.area_spec {
                 for id in list.iter().filter(|id| !known.contains(id.as_str())) {
                     all_errors.push(ConfigError {
                         file: file.clone(),
@@ -1171,24 +1174,79 @@ pub fn parse_hhmm(s: &str) -> Option<NaiveTime> {
     NaiveTime::from_hms_opt(h.parse().ok()?, m.parse().ok()?, 0)
 }
 
-/// `HH:MM-HH:MM`.
-pub fn parse_local_window(s: &str) -> Option<(NaiveTime, NaiveTime)> {
-    let (a, b) = s.split_once('-')?;
-    Some((parse_hhmm(a)?, parse_hhmm(b)?))
-}
-
-/// `MM-DD..MM-DD` with real month/day pairs (02-29 allowed).
-pub fn parse_season(s: &str) -> Option<((u32, u32), (u32, u32))> {
-    let (a, b) = s.split_once("..")?;
-    let md = |x: &str| -> Option<(u32, u32)> {
-        let (m, d) = x.split_once('-')?;
-        if m.len() != 2 || d.len() != 2 {
-            return None;
-        }
-        let (m, d): (u32, u32) = (m.parse().ok()?, d.parse().ok()?);
-        chrono::NaiveDate::from_ymd_opt(2024, m, d).map(|_| (m, d))
+/// Builds the area: reads and checks a GeoJSON file, whose faults are
+/// reported against that file (and where the config names it).
+fn build_area(
+    w: &mut Walker<'_, '_>,
+    spec: &AreaSpec,
+    at: usize,
+    key: &str,
+    files: &Files<'_>,
+) -> Option<Area> {
+    let named_at = {
+        let (line, col) = error::LineIndex::new(w.rep.src).locate(w.rep.src, at);
+        format!("{}:{line}:{col}", w.rep.file.display())
     };
-    Some((md(a)?, md(b)?))
+    match spec {
+        AreaSpec::All => Some(Area::All),
+        AreaSpec::Sites(list) => Some(Area::Sites(list.clone())),
+        AreaSpec::Circle {
+            lat,
+            lon,
+            radius_km,
+        } => {
+            let built = LatLon::new(*lat, *lon)
+                .map_err(|e| e.to_string())
+                .and_then(|c| Circle::new(c, *radius_km).map_err(|e| e.to_string()));
+            match built {
+                Ok(c) => Some(Area::Circle(c)),
+                Err(msg) => {
+                    w.rep.at(at, key, msg, None);
+                    None
+                }
+            }
+        }
+        AreaSpec::GeoJson { file, buffer_km } => {
+            let text = match (files.read)(file) {
+                Ok(t) => t,
+                Err(e) => {
+                    w.rep.at(
+                        at,
+                        key,
+                        format!("cannot read {}: {e}", file.display()),
+                        Some("the path is relative to the configuration file".into()),
+                    );
+                    return None;
+                }
+            };
+            match PolygonArea::from_geojson(&text, *buffer_km) {
+                Ok(p) => Some(Area::Polygon(p)),
+                Err(e) => {
+                    let (line, col, hint) = match &e {
+                        crate::geo::AreaError::GeoJson(g) => {
+                            let (l, c) = match g {
+                                crate::geo::GeoJsonError::InvalidJson { line, column, .. } => {
+                                    (*line, *column)
+                                }
+                                _ => (0, 0),
+                            };
+                            (l, c, Some(format!("{} (named at {named_at})", g.hint())))
+                        }
+                        _ => (0, 0, Some(format!("named at {named_at}"))),
+                    };
+                    w.rep.errors.push(ConfigError {
+                        file: file.clone(),
+                        line,
+                        col,
+                        key: key.to_string(),
+                        message: e.to_string(),
+                        hint,
+                    });
+                    None
+                }
+            }
+        }
+    }
 }
 
 fn read_area(w: &mut Walker<'_, '_>, t: &mut Table<'_, '_>, base: &Path) -> Option<AreaSpec> {
@@ -1376,24 +1434,38 @@ fn read_subscriber(
     };
     let quiet_hours = match w.str(t, "quiet_hours") {
         None => None,
-        Some(q) => {
-            if parse_local_window(&q.value).is_none() {
+        Some(q) => match Hours::parse(&q.value) {
+            Ok(Hours::Local(h)) => Some(h),
+            Ok(_) => {
+                w.error(&q.span, &t.key_path("quiet_hours"), format!("`{}` is not a local time window", q.value), Some("quiet hours are HH:MM-HH:MM on the local clock, may wrap midnight, e.g. \"21:30-05:00\"".into()));
+                ok = false;
+                None
+            }
+            Err(e) => {
                 w.error(
                     &q.span,
                     &t.key_path("quiet_hours"),
-                    format!("`{}` is not a local time window", q.value),
-                    Some("HH:MM-HH:MM, may wrap midnight, e.g. \"21:30-05:00\"".into()),
+                    e.to_string(),
+                    Some(e.hint().into()),
                 );
                 ok = false;
+                None
             }
-            Some(q.value)
-        }
+        },
     };
     let max_per_hour = w
         .int(t, "max_per_hour", 1, 10_000)
         .map(|v| v.value as u32)
         .unwrap_or(6);
-    let area = read_area(w, t, base);
+    let area_at = t
+        .map
+        .get("area")
+        .map(|n| n.span().start)
+        .unwrap_or(t.span.start);
+    let area_spec = read_area(w, t, base);
+    let area = area_spec
+        .as_ref()
+        .and_then(|a| build_area(w, a, area_at, &t.key_path("area"), files));
     let webhook = w.table(t, "webhook").and_then(|mut h| {
         let url = w.req_str(&mut h, "url", "the address outrider POSTs each notice to");
         let secret = read_secret(w, &mut h, "secret", files);
@@ -1431,8 +1503,8 @@ fn read_subscriber(
         }
         w.finish(wt, WATCH_KEYS);
     }
-    let (Some(id), Some(timezone), Some(digest_at), Some(area), true) =
-        (id, timezone, digest_at, area, ok)
+    let (Some(id), Some(timezone), Some(digest_at), Some(area_spec), Some(area), true) =
+        (id, timezone, digest_at, area_spec, area, ok)
     else {
         return None;
     };
@@ -1444,6 +1516,7 @@ fn read_subscriber(
         digest_at,
         quiet_hours,
         max_per_hour,
+        area_spec,
         area,
         webhook,
         watches,
@@ -1540,34 +1613,30 @@ fn read_watch(
         }
     }
     let hours = match w.str(t, "hours") {
-        None => "any".to_string(),
-        Some(h) => {
-            if !(h.value == "any"
-                || h.value == "dusk-to-dawn"
-                || parse_local_window(&h.value).is_some())
-            {
-                w.error(
-                    &h.span,
-                    &t.key_path("hours"),
-                    format!("`{}` is not a time window", h.value),
-                    Some("any, dusk-to-dawn, or HH:MM-HH:MM local (may wrap midnight)".into()),
-                );
-                ok = false;
-            }
-            h.value
-        }
-    };
-    let season = w.str(t, "season").map(|s| {
-        if parse_season(&s.value).is_none() {
+        None => Hours::Any,
+        Some(h) => Hours::parse(&h.value).unwrap_or_else(|e| {
             w.error(
-                &s.span,
-                &t.key_path("season"),
-                format!("`{}` is not a season", s.value),
-                Some("MM-DD..MM-DD, inclusive, may wrap the year, e.g. \"07-01..08-31\"".into()),
+                &h.span,
+                &t.key_path("hours"),
+                e.to_string(),
+                Some(e.hint().into()),
             );
             ok = false;
-        }
-        s.value
+            Hours::Any
+        }),
+    };
+    let season = w.str(t, "season").and_then(|s| {
+        Season::parse(&s.value)
+            .map_err(|e| {
+                w.error(
+                    &s.span,
+                    &t.key_path("season"),
+                    e.to_string(),
+                    Some(e.hint().into()),
+                );
+                ok = false;
+            })
+            .ok()
     });
     let min_probability = if t.has("min_probability") {
         let p = w.f64_in(

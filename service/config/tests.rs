@@ -15,6 +15,15 @@ fn parse_with(src: &str, env: &[(&str, &str)]) -> Result<Config, ConfigErrors> {
         read: &|p: &Path| {
             if p.ends_with("sites.csv") {
                 Ok(SITES.to_string())
+            } else if p.ends_with("open.geojson") {
+                Ok(r#"{"type":"Polygon","coordinates":[[[148.0,-31.5],[148.1,-31.5],[148.1,-31.6],[148.0,-31.6]]]}"#.to_string())
+            } else if p.ends_with("broken.geojson") {
+                Ok(
+                    "{\n  \"type\": \"Polygon\",\n  \"coordinates\": [[[148.0, -31.5],]]\n}"
+                        .to_string(),
+                )
+            } else if p.ends_with("paddock.geojson") {
+                Ok(r#"{"type":"Polygon","coordinates":[[[148.0,-31.5],[148.1,-31.5],[148.1,-31.6],[148.0,-31.6],[148.0,-31.5]]]}"#.to_string())
             } else if p.ends_with("secret.txt") {
                 Ok("s3cret\n".to_string())
             } else {
@@ -319,5 +328,85 @@ mod properties {
             s.insert_str(p, &insert);
             let _ = parse_with(&s, &[]);
         }
+    }
+}
+
+#[test]
+fn geojson_areas_are_read_and_their_faults_name_the_file() {
+    let sub = |area: &str| {
+        format!("[sites]\nfile = \"sites.csv\"\n[[subscriber]]\nid = \"x\"\narea = {area}\n")
+    };
+    let cfg = parse_with(
+        &sub("{ geojson = \"areas/paddock.geojson\", buffer_km = 1.0 }"),
+        &[],
+    )
+    .expect("valid");
+    assert!(matches!(cfg.subscribers[0].area, Area::Polygon(_)));
+
+    let errs = errors(&sub("{ geojson = \"areas/open.geojson\" }"));
+    assert_eq!(errs.len(), 1, "{errs:?}");
+    assert!(errs[0].file.ends_with("areas/open.geojson"), "{errs:?}");
+    assert!(errs[0].message.contains("not closed"), "{}", errs[0]);
+    assert!(
+        errs[0]
+            .hint
+            .as_deref()
+            .is_some_and(|h| h.contains("outrider.toml:5:8")),
+        "{:?}",
+        errs[0].hint
+    );
+
+    // Invalid JSON: the line and column inside the GeoJSON file.
+    let errs = errors(&sub("{ geojson = \"areas/broken.geojson\" }"));
+    assert_eq!((errs[0].line, errs[0].col > 0), (3, true), "{errs:?}");
+
+    let errs = errors(&sub("{ geojson = \"areas/missing.geojson\" }"));
+    assert!(errs[0].message.contains("cannot read"), "{errs:?}");
+}
+
+#[test]
+fn hours_seasons_and_quiet_hours_use_the_calendar_parsers() {
+    let sub = |sub_extra: &str, watch: &str| {
+        format!("[sites]\nfile = \"sites.csv\"\n[[subscriber]]\nid = \"x\"\narea = \"all\"\n{sub_extra}\n[[subscriber.watch]]\ntrigger = \"silence\"\nchannels = [\"mqtt\"]\n{watch}\n")
+    };
+    let cfg = parse_with(
+        &sub(
+            "quiet_hours = \"21:30-05:00\"",
+            "hours = \"dusk-to-dawn\"\nseason = \"12-01..02-28\"",
+        ),
+        &[],
+    )
+    .expect("valid");
+    let s = &cfg.subscribers[0];
+    assert!(s.quiet_hours.is_some());
+    assert_eq!(s.watches[0].hours, crate::calendar::Hours::DuskToDawn);
+    assert!(s.watches[0].season.is_some());
+    for (extra, watch, key) in [
+        (
+            "quiet_hours = \"dusk-to-dawn\"",
+            "",
+            "subscriber[1].quiet_hours",
+        ),
+        (
+            "quiet_hours = \"25:00-05:00\"",
+            "",
+            "subscriber[1].quiet_hours",
+        ),
+        ("", "hours = \"night\"", "subscriber[1].watch[1].hours"),
+        (
+            "",
+            "hours = \"06:00-06:00\"",
+            "subscriber[1].watch[1].hours",
+        ),
+        (
+            "",
+            "season = \"13-01..02-01\"",
+            "subscriber[1].watch[1].season",
+        ),
+    ] {
+        let errs = errors(&sub(extra, watch));
+        assert_eq!(errs.len(), 1, "{extra} {watch}: {errs:?}");
+        assert_eq!(errs[0].key, key);
+        assert!(errs[0].hint.is_some());
     }
 }

@@ -94,6 +94,8 @@ pub struct StatusCounts {
     pub events: u64,
     pub notices: BTreeMap<String, u64>,
     pub outbox_pending: u64,
+    /// Deliveries by state (pending, sent, failed).
+    pub deliveries: BTreeMap<String, u64>,
     pub deployments_silent: u64,
     pub heartbeats_stored: u64,
     pub corrections_stored: u64,
@@ -105,18 +107,33 @@ pub struct StatusCounts {
 /// The storage operations outrider needs. Implementations are used from one
 /// thread at a time.
 pub trait Backend: Send + 'static {
-    /// Commits the whole batch in one transaction, or nothing.
-    fn commit(&mut self, batch: &[Ingest]) -> Result<Vec<Outcome>, StoreError>;
+    /// Commits the whole batch and what the engine derived from it in one
+    /// transaction, or nothing.
+    fn commit(
+        &mut self,
+        batch: &[Ingest],
+        derived: &[crate::engine::Output],
+    ) -> Result<Vec<Outcome>, StoreError>;
     fn status(&mut self) -> Result<StatusCounts, StoreError>;
+    /// Stored messages since `since`, oldest first (observations and
+    /// heartbeats by their own time), then the corrections of those
+    /// observations in arrival order: what the engine needs to warm up.
+    fn history(&mut self, since: DateTime<Utc>) -> Result<Vec<Message>, StoreError>;
     /// Flushes what can be flushed before the process exits.
     fn close(&mut self) -> Result<(), StoreError>;
 }
 
+/// Work run on the store thread.
+type Job = Box<dyn FnOnce(&mut dyn Backend) + Send>;
+
 enum Cmd {
     Commit(
         Vec<Ingest>,
+        Vec<crate::engine::Output>,
         oneshot::Sender<Result<Vec<Outcome>, StoreError>>,
     ),
+    /// Runs a closure on the backend's thread (start-up loads, workers).
+    With(Job),
     Status(oneshot::Sender<Result<StatusCounts, StoreError>>),
 }
 
@@ -143,9 +160,10 @@ impl Store {
             .spawn(move || {
                 while let Some(cmd) = rx.blocking_recv() {
                     match cmd {
-                        Cmd::Commit(batch, reply) => {
-                            let _ = reply.send(backend.commit(&batch));
+                        Cmd::Commit(batch, derived, reply) => {
+                            let _ = reply.send(backend.commit(&batch, &derived));
                         }
+                        Cmd::With(f) => f(backend.as_mut()),
                         Cmd::Status(reply) => {
                             let _ = reply.send(backend.status());
                         }
@@ -158,13 +176,33 @@ impl Store {
         Ok((Store { tx }, handle))
     }
 
-    pub async fn commit(&self, batch: Vec<Ingest>) -> Result<Vec<Outcome>, StoreError> {
+    pub async fn commit(
+        &self,
+        batch: Vec<Ingest>,
+        derived: Vec<crate::engine::Output>,
+    ) -> Result<Vec<Outcome>, StoreError> {
         let (reply, rx) = oneshot::channel();
         self.tx
-            .send(Cmd::Commit(batch, reply))
+            .send(Cmd::Commit(batch, derived, reply))
             .await
             .map_err(|_| StoreError::Stopped)?;
         rx.await.map_err(|_| StoreError::Stopped)?
+    }
+
+    /// Runs `f` on the store thread with the backend and returns its result.
+    pub async fn with<T: Send + 'static>(
+        &self,
+        f: impl FnOnce(&mut dyn Backend) -> T + Send + 'static,
+    ) -> Result<T, StoreError> {
+        let (reply, rx) = oneshot::channel();
+        let job: Job = Box::new(move |b| {
+            let _ = reply.send(f(b));
+        });
+        self.tx
+            .send(Cmd::With(job))
+            .await
+            .map_err(|_| StoreError::Stopped)?;
+        rx.await.map_err(|_| StoreError::Stopped)
     }
 
     pub async fn status(&self) -> Result<StatusCounts, StoreError> {

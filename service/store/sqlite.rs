@@ -2,13 +2,17 @@
 //! applied at open (`PRAGMA user_version` holds the number applied).
 
 use super::{Backend, Ingest, Outcome, StatusCounts, StoreError};
+use crate::engine::Output;
 use crate::model::{Message, ObservationType, RejectReason, Rejection};
 use chrono::{DateTime, Utc};
 use rusqlite::{params, Connection, OpenFlags, OptionalExtension};
 use std::path::Path;
 
 /// The migrations, in order. Never edit one that has shipped: add another.
-pub const MIGRATIONS: &[(&str, &str)] = &[("0001_init", include_str!("migrations/0001_init.sql"))];
+pub const MIGRATIONS: &[(&str, &str)] = &[
+    ("0001_init", include_str!("migrations/0001_init.sql")),
+    ("0002_derived", include_str!("migrations/0002_derived.sql")),
+];
 
 /// How hard SQLite works to keep a commit on disk.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -118,8 +122,148 @@ fn store_rejection(
     Ok(())
 }
 
+/// Writes one engine output. Notices are keyed by their stable id, so a
+/// redelivered message cannot make a second notice or delivery.
+fn store_derived(tx: &rusqlite::Transaction<'_>, d: &Output) -> rusqlite::Result<()> {
+    match d {
+        Output::EventUpsert(e) => {
+            tx.prepare_cached("INSERT OR REPLACE INTO events (deployment_id, scientific_name, start, end, count, triggers) VALUES (?1, ?2, ?3, ?4, ?5, ?6)")?
+                .execute(params![e.deployment_id, e.scientific_name, ms(e.start), ms(e.end), e.count, e.triggers])?;
+        }
+        Output::EventDelete(id) => {
+            tx.prepare_cached("DELETE FROM events WHERE deployment_id = ?1 AND scientific_name = ?2 AND start = ?3")?
+                .execute(params![id.deployment_id, id.scientific_name, ms(id.start)])?;
+        }
+        Output::Notice {
+            notice,
+            reason,
+            channels,
+        } => {
+            let id = notice.id();
+            let mut body = notice.replay_line();
+            body["reason"] = serde_json::Value::String(reason.clone());
+            let n = tx
+                .prepare_cached("INSERT INTO notices (id, subscriber_id, watch, trigger, deployment_id, scientific_name, event_id, event_time, at, disposition, reason, body) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12) ON CONFLICT (id) DO NOTHING")?
+                .execute(params![
+                    id.as_str(),
+                    notice.subscriber_id,
+                    notice.watch,
+                    notice.trigger.as_str(),
+                    notice.deployment_id,
+                    notice.scientific_name,
+                    notice.event_id,
+                    ms(notice.event_time),
+                    ms(notice.at),
+                    notice.disposition.as_str(),
+                    reason,
+                    body.to_string(),
+                ])?;
+            if n == 1 && notice.disposition == crate::notify::Disposition::Sent {
+                for c in channels {
+                    tx.prepare_cached("INSERT INTO deliveries (notice_id, channel, state, next_attempt_at, created_at) VALUES (?1, ?2, 'pending', ?3, ?3) ON CONFLICT DO NOTHING")?
+                        .execute(params![id.as_str(), c.as_str(), ms(notice.at)])?;
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Observations and heartbeats since `since` merged in time order, then
+/// the corrections of those observations.
+pub fn load_history(c: &Connection, since: DateTime<Utc>) -> Result<Vec<Message>, StoreError> {
+    use crate::model::{ClassificationMethod, Correction, Heartbeat, Observation};
+    let mut obs: Vec<Message> = Vec::new();
+    let mut stmt = c.prepare_cached(
+        "SELECT observation_id, deployment_id, event_start, event_end, observation_type, scientific_name, count, classification_probability, classification_method, media_id, file_path, vernacular_name, life_stage, sex, behavior
+         FROM observations WHERE event_start >= ?1 ORDER BY event_start, observation_id",
+    )?;
+    let rows = stmt.query_map(params![ms(since)], |r| {
+        Ok(Observation {
+            observation_id: r.get(0)?,
+            deployment_id: r.get(1)?,
+            event_start: from_ms(r.get(2)?),
+            event_end: r.get::<_, Option<i64>>(3)?.map(from_ms),
+            observation_type: ObservationType::parse(&r.get::<_, String>(4)?)
+                .unwrap_or(ObservationType::Unknown),
+            scientific_name: r.get(5)?,
+            count: r.get::<_, i64>(6)?.clamp(1, i64::from(u32::MAX)) as u32,
+            classification_probability: r.get(7)?,
+            classification_method: r
+                .get::<_, Option<String>>(8)?
+                .and_then(|m| match m.as_str() {
+                    "machine" => Some(ClassificationMethod::Machine),
+                    "human" => Some(ClassificationMethod::Human),
+                    _ => None,
+                }),
+            media_id: r.get(9)?,
+            file_path: r.get(10)?,
+            vernacular_name: r.get(11)?,
+            life_stage: r.get(12)?,
+            sex: r.get(13)?,
+            behavior: r.get(14)?,
+        })
+    })?;
+    for o in rows {
+        obs.push(Message::Observation(o?));
+    }
+    let mut hbs: Vec<Message> = Vec::new();
+    let mut stmt = c.prepare_cached("SELECT deployment_id, timestamp, battery_percent, signal_dbm, images_since_last FROM heartbeats WHERE timestamp >= ?1 ORDER BY timestamp")?;
+    let rows = stmt.query_map(params![ms(since)], |r| {
+        Ok(Heartbeat {
+            deployment_id: r.get(0)?,
+            timestamp: from_ms(r.get(1)?),
+            battery_percent: r.get(2)?,
+            signal_dbm: r.get(3)?,
+            images_since_last: r.get::<_, Option<i64>>(4)?.map(|v| v.max(0) as u64),
+        })
+    })?;
+    for h in rows {
+        hbs.push(Message::Heartbeat(h?));
+    }
+    let time = |m: &Message| match m {
+        Message::Observation(o) => o.event_start,
+        Message::Heartbeat(h) => h.timestamp,
+        Message::Correction(_) => DateTime::<Utc>::MAX_UTC,
+    };
+    let mut out = Vec::with_capacity(obs.len() + hbs.len());
+    let (mut a, mut b) = (obs.into_iter().peekable(), hbs.into_iter().peekable());
+    loop {
+        let take_a = match (a.peek(), b.peek()) {
+            (Some(x), Some(y)) => time(x) <= time(y),
+            (Some(_), None) => true,
+            (None, Some(_)) => false,
+            (None, None) => break,
+        };
+        if let Some(m) = if take_a { a.next() } else { b.next() } {
+            out.push(m);
+        }
+    }
+    let mut stmt = c.prepare_cached(
+        "SELECT c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type FROM corrections c
+         JOIN observations o ON o.observation_id = c.observation_id WHERE o.event_start >= ?1 ORDER BY c.id",
+    )?;
+    let rows = stmt.query_map(params![ms(since)], |r| {
+        Ok(Correction {
+            observation_id: r.get(0)?,
+            deployment_id: r.get(1)?,
+            scientific_name: r.get(2)?,
+            count: r
+                .get::<_, Option<i64>>(3)?
+                .map(|v| v.clamp(1, i64::from(u32::MAX)) as u32),
+            observation_type: r
+                .get::<_, Option<String>>(4)?
+                .and_then(|t| ObservationType::parse(&t)),
+        })
+    })?;
+    for c in rows {
+        out.push(Message::Correction(c?));
+    }
+    Ok(out)
+}
+
 impl Backend for Sqlite {
-    fn commit(&mut self, batch: &[Ingest]) -> Result<Vec<Outcome>, StoreError> {
+    fn commit(&mut self, batch: &[Ingest], derived: &[Output]) -> Result<Vec<Outcome>, StoreError> {
         let tx = self.conn.transaction()?;
         let mut out = Vec::with_capacity(batch.len());
         let mut duplicates = 0;
@@ -255,6 +399,9 @@ impl Backend for Sqlite {
         if duplicates > 0 {
             bump(&tx, "duplicates_ignored", duplicates)?;
         }
+        for d in derived {
+            store_derived(&tx, d)?;
+        }
         tx.commit()?;
         Ok(out)
     }
@@ -279,6 +426,19 @@ impl Backend for Sqlite {
             corrections_stored: count("SELECT count(*) FROM corrections")?,
             ..Default::default()
         };
+        s.events = count("SELECT count(*) FROM events")?;
+        s.outbox_pending = count("SELECT count(*) FROM deliveries WHERE state = 'pending'")?;
+        let mut stmt =
+            c.prepare("SELECT disposition, count(*) FROM notices GROUP BY disposition")?;
+        for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
+            let (d, n) = row?;
+            s.notices.insert(d, n.max(0) as u64);
+        }
+        let mut stmt = c.prepare("SELECT state, count(*) FROM deliveries GROUP BY state")?;
+        for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
+            let (d, n) = row?;
+            s.deliveries.insert(d, n.max(0) as u64);
+        }
         let mut stmt =
             c.prepare("SELECT reason, count(*) FROM rejected GROUP BY reason ORDER BY reason")?;
         for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
@@ -299,11 +459,61 @@ impl Backend for Sqlite {
         Ok(s)
     }
 
+    fn history(&mut self, since: DateTime<Utc>) -> Result<Vec<Message>, StoreError> {
+        load_history(&self.conn, since)
+    }
+
     fn close(&mut self) -> Result<(), StoreError> {
         // Fold the WAL back into the main file so a copy of outrider.db alone
         // is a complete backup after a clean stop.
         self.conn
             .query_row("PRAGMA wal_checkpoint(TRUNCATE)", [], |_| Ok(()))?;
         Ok(())
+    }
+}
+
+impl Sqlite {
+    /// Recomputes the independent events from the raw observations (with
+    /// their corrections applied in arrival order) and replaces the events
+    /// table in one transaction. Returns (observations read, events written).
+    pub fn rebuild_events(
+        &mut self,
+        interval: chrono::Duration,
+    ) -> Result<(usize, usize), StoreError> {
+        use crate::activity::{EventLedger, Trigger};
+        let history = load_history(&self.conn, DateTime::<Utc>::MIN_UTC)?;
+        let mut ledger = EventLedger::new(interval);
+        let mut read = 0;
+        for m in &history {
+            match m {
+                Message::Observation(o) => {
+                    read += 1;
+                    if let (ObservationType::Animal, Some(name)) =
+                        (o.observation_type, &o.scientific_name)
+                    {
+                        ledger.insert(Trigger {
+                            observation_id: o.observation_id.clone(),
+                            deployment_id: o.deployment_id.clone(),
+                            scientific_name: name.clone(),
+                            at: o.event_start,
+                            count: o.count,
+                        });
+                    }
+                }
+                Message::Correction(c) => {
+                    crate::engine::correct(&mut ledger, c);
+                }
+                Message::Heartbeat(_) => {}
+            }
+        }
+        let tx = self.conn.transaction()?;
+        tx.execute("DELETE FROM events", [])?;
+        let mut written = 0;
+        for e in ledger.events() {
+            store_derived(&tx, &Output::EventUpsert(e))?;
+            written += 1;
+        }
+        tx.commit()?;
+        Ok((read, written))
     }
 }

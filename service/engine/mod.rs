@@ -1,0 +1,752 @@
+//! The engine: the one pure core that the daemon and `outrider replay` both
+//! run. It takes decoded messages (and the time, as a value) and returns
+//! what to store: independent-event changes and notice decisions.
+//!
+//! It owns the in-memory working set: the event ledger (a trailing horizon
+//! of triggers), each deployment's uptime, the fatigue-control state and
+//! the open silence episodes. It never does I/O and never reads the clock;
+//! the daemon persists its outputs in the same transaction as the messages
+//! that caused them, and rebuilds the working set from the store at start.
+//!
+//! # What fires when
+//! - An observation of an animal that starts a new independent event (or
+//!   raises an event's best classification probability over a watch's
+//!   threshold) is checked against every watch of every subscriber whose
+//!   area covers the site: `presence`, `first-seen` (no event of that
+//!   species at any covered site for `quiet_days`, with monitoring over that
+//!   whole span) and `spike` (gamma-Poisson test over `window_hours`).
+//! - [`Engine::tick`] opens a silence episode for a covered deployment with
+//!   no sign of life for a watch's `silence_hours`; the next sign of life
+//!   closes it with a `silence-ended` notice.
+//! - A correction that retracts an observation a sent notice was based on
+//!   produces a short follow-up.
+//!
+//! Every candidate then goes through [`crate::notify::Policy`] (cooldown,
+//! hourly cap, quiet hours), and every decision comes out with its reason.
+
+pub mod rules;
+
+use crate::activity::{
+    baseline_window, spike_test, Change, EventId, EventLedger, IndependentEvent, SpikeEvidence,
+    SpikeInput, SpikeParams, Trigger, Uptime,
+};
+use crate::config::{Config, TriggerKind};
+use crate::model::{Message, Observation, ObservationType};
+use crate::notify::{Candidate, Decision, Disposition, Evidence, FoldKey, Notice, Policy};
+use chrono::{DateTime, Duration, Utc};
+use rules::RuleBook;
+use std::collections::{HashMap, HashSet};
+use std::sync::Arc;
+
+/// What the engine asks the shell to store.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Output {
+    /// Insert or replace this event.
+    EventUpsert(IndependentEvent),
+    /// This event no longer exists in that form.
+    EventDelete(EventId),
+    /// A notice decision (sent, folded or deferred) with its reason and the
+    /// channels a sent notice goes out on.
+    Notice {
+        notice: Box<Notice>,
+        reason: String,
+        channels: Vec<crate::config::Channel>,
+    },
+}
+
+/// What the engine remembers of an event besides the ledger's numbers.
+#[derive(Debug, Clone, Default)]
+struct EventMeta {
+    best_probability: f64,
+    vernacular_name: Option<String>,
+    file_path: Option<String>,
+}
+
+/// Working state of the core. Build with [`Engine::new`], warm with
+/// [`Engine::warm`], then feed [`Engine::apply`] and [`Engine::tick`].
+pub struct Engine {
+    cfg: Arc<Config>,
+    rules: RuleBook,
+    ledger: EventLedger,
+    uptime: Vec<Uptime>,
+    last_sign: Vec<DateTime<Utc>>,
+    meta: HashMap<EventId, EventMeta>,
+    /// (subscriber, watch, event) already decided, so an event is notified once.
+    decided: HashSet<(usize, usize, EventId)>,
+    /// Sent notices per event, for retraction follow-ups.
+    sent_for: HashMap<EventId, Vec<Notice>>,
+    /// Open silence episodes: (subscriber, watch, site) -> last sign of life.
+    silent: HashMap<(usize, usize, usize), DateTime<Utc>>,
+    policy: Policy,
+    /// Regional rate cache: (species, baseline window end hour) -> rate.
+    regional: HashMap<(String, i64), f64>,
+    last_prune: Option<DateTime<Utc>>,
+    /// While warming, nothing is notified (history is being loaded).
+    quiet: bool,
+}
+
+/// Observations with no probability (e.g. labelled by a person) count as certain.
+fn probability(o: &Observation) -> f64 {
+    o.classification_probability.unwrap_or(1.0)
+}
+
+impl Engine {
+    pub fn new(cfg: Arc<Config>) -> Self {
+        let rules = RuleBook::compile(&cfg);
+        let silence =
+            Duration::seconds((cfg.sites.silence_hours * 3600.0) as i64).max(Duration::seconds(1));
+        let uptime = cfg
+            .sites
+            .sites
+            .iter()
+            .map(|s| {
+                Uptime::new(s.deployment_start, s.deployment_end, silence)
+                    .or_else(|_| Uptime::new(s.deployment_start, None, silence))
+                    .unwrap_or_else(|_| unreachable_uptime(s.deployment_start))
+            })
+            .collect();
+        let last_sign = cfg.sites.sites.iter().map(|s| s.deployment_start).collect();
+        Engine {
+            ledger: EventLedger::new(Duration::minutes(cfg.detection.independence_minutes as i64)),
+            rules,
+            uptime,
+            last_sign,
+            meta: HashMap::new(),
+            decided: HashSet::new(),
+            sent_for: HashMap::new(),
+            silent: HashMap::new(),
+            policy: Policy::new(),
+            regional: HashMap::new(),
+            last_prune: None,
+            quiet: false,
+            cfg,
+        }
+    }
+
+    /// How far back the working set must reach: the longest baseline or
+    /// quiet-days look-back, plus margin.
+    pub fn horizon(&self) -> Duration {
+        let b = &self.cfg.baseline;
+        let mut days = i64::from(b.window_days + b.guard_days) + 4;
+        for s in &self.cfg.subscribers {
+            for w in &s.watches {
+                days = days.max(i64::from(w.quiet_days) + 1).max(
+                    i64::from(b.window_days + b.guard_days) + i64::from(w.window_hours) / 24 + 2,
+                );
+            }
+        }
+        Duration::days(days + 1)
+    }
+
+    /// Loads history without notifying (start-up, rebuild).
+    pub fn warm<'a>(&mut self, messages: impl IntoIterator<Item = &'a Message>) {
+        self.quiet = true;
+        let mut last = None;
+        for m in messages {
+            let at = match m {
+                Message::Observation(o) => o.event_start,
+                Message::Heartbeat(h) => h.timestamp,
+                Message::Correction(_) => match last {
+                    Some(t) => t,
+                    None => continue,
+                },
+            };
+            last = Some(last.map_or(at, |l: DateTime<Utc>| l.max(at)));
+            self.apply(m, at);
+        }
+        self.quiet = false;
+    }
+
+    /// The rule book (sites covered per subscriber).
+    pub fn rules(&self) -> &RuleBook {
+        &self.rules
+    }
+
+    /// All events in the working set.
+    pub fn events(&self) -> impl Iterator<Item = IndependentEvent> + '_ {
+        self.ledger.events()
+    }
+
+    /// Applies one message at `now`; returns what to store.
+    pub fn apply(&mut self, message: &Message, now: DateTime<Utc>) -> Vec<Output> {
+        let mut out = Vec::new();
+        match message {
+            Message::Heartbeat(h) => {
+                self.sign_of_life(&h.deployment_id, h.timestamp, now, &mut out)
+            }
+            Message::Observation(o) => {
+                self.sign_of_life(&o.deployment_id, o.event_start, now, &mut out);
+                if o.observation_type == ObservationType::Animal {
+                    if let Some(name) = &o.scientific_name {
+                        self.animal(o, name, now, &mut out);
+                    }
+                }
+            }
+            Message::Correction(c) => {
+                let change = correct(&mut self.ledger, c);
+                let removed = self.store_change(&change, &mut out);
+                for id in removed {
+                    self.follow_up(&id, &c.observation_id, now, &mut out);
+                }
+            }
+        }
+        self.maybe_prune(now);
+        out
+    }
+
+    fn sign_of_life(
+        &mut self,
+        dep: &str,
+        at: DateTime<Utc>,
+        now: DateTime<Utc>,
+        out: &mut Vec<Output>,
+    ) {
+        let Some(site) = self.rules.site_index(dep) else {
+            return;
+        };
+        self.uptime[site].record(at);
+        if at > self.last_sign[site] {
+            self.last_sign[site] = at;
+        }
+        // A sign of life closes the silence episodes of this site.
+        let closed: Vec<((usize, usize, usize), DateTime<Utc>)> = self
+            .silent
+            .iter()
+            .filter(|((_, _, s), _)| *s == site)
+            .map(|(k, v)| (*k, *v))
+            .collect();
+        for ((sub, watch, s), since) in closed {
+            self.silent.remove(&(sub, watch, s));
+            if !self.quiet {
+                let silent_hours = (at - since).num_minutes() as f64 / 60.0;
+                let ev = Evidence {
+                    silent_hours: Some(round2(silent_hours)),
+                    ..Default::default()
+                };
+                self.decide(
+                    sub,
+                    watch,
+                    site,
+                    crate::notify::Trigger::SilenceEnded,
+                    None,
+                    format!(
+                        "silence-ended:{}:{}",
+                        self.rules.site(site).deployment_id,
+                        rfc(since)
+                    ),
+                    at,
+                    ev,
+                    now,
+                    out,
+                );
+            }
+        }
+    }
+
+    fn animal(&mut self, o: &Observation, name: &str, now: DateTime<Utc>, out: &mut Vec<Output>) {
+        let change = self.ledger.insert(Trigger {
+            observation_id: o.observation_id.clone(),
+            deployment_id: o.deployment_id.clone(),
+            scientific_name: name.to_string(),
+            at: o.event_start,
+            count: o.count,
+        });
+        let id = match &change {
+            Change::NewEvent(id) => id.clone(),
+            Change::Extended { new, .. }
+            | Change::Merged { new, .. }
+            | Change::Updated { new, .. } => new.clone(),
+            _ => return,
+        };
+        self.store_change(&change, out);
+        let meta = self.meta.entry(id.clone()).or_default();
+        meta.best_probability = meta.best_probability.max(probability(o));
+        if meta.vernacular_name.is_none() {
+            meta.vernacular_name.clone_from(&o.vernacular_name);
+        }
+        if meta.file_path.is_none() {
+            meta.file_path.clone_from(&o.file_path);
+        }
+        if self.quiet {
+            return;
+        }
+        let Some(site) = self.rules.site_index(&o.deployment_id) else {
+            return;
+        };
+        let Some(event) = self.ledger.event(&id) else {
+            return;
+        };
+        let best = self
+            .meta
+            .get(&id)
+            .map(|m| m.best_probability)
+            .unwrap_or(0.0);
+        let mut spike_cache: HashMap<u32, Option<SpikeEvidence>> = HashMap::new();
+        let covering: Vec<(usize, f64)> = self.rules.covering(site).to_vec();
+        for (sub, distance_km) in covering {
+            let nwatches = self.cfg.subscribers[sub].watches.len();
+            for wi in 0..nwatches {
+                let w = &self.cfg.subscribers[sub].watches[wi];
+                if !matches!(
+                    w.trigger,
+                    TriggerKind::Presence | TriggerKind::FirstSeen | TriggerKind::Spike
+                ) {
+                    continue;
+                }
+                if !w.species.contains(name) || best < w.min_probability {
+                    continue;
+                }
+                if !self.rules.in_window(sub, wi, site, event.start) {
+                    continue;
+                }
+                if self.decided.contains(&(sub, wi, id.clone())) {
+                    continue;
+                }
+                let mut ev = Evidence {
+                    count: Some(event.count),
+                    distance_km: Some(round2(distance_km)),
+                    ..Default::default()
+                };
+                let trigger = match w.trigger {
+                    TriggerKind::Presence => crate::notify::Trigger::Presence,
+                    TriggerKind::FirstSeen => {
+                        if !self.first_seen(sub, name, event.start, w.quiet_days) {
+                            continue;
+                        }
+                        ev.quiet_days = Some(w.quiet_days);
+                        crate::notify::Trigger::FirstSeen
+                    }
+                    _ => {
+                        let (hours, ratio, min_count) = (w.window_hours, w.ratio, w.min_count);
+                        let s = match spike_cache.get(&hours) {
+                            Some(s) => s.clone(),
+                            None => {
+                                let s = self.spike_evidence(
+                                    site,
+                                    name,
+                                    event.start,
+                                    hours,
+                                    ratio,
+                                    min_count,
+                                );
+                                spike_cache.insert(hours, s.clone());
+                                s
+                            }
+                        };
+                        let Some(s) = s else { continue };
+                        // Thresholds are the watch's own; the p-value is shared.
+                        if !(s.p_value < self.cfg.baseline.alpha
+                            && s.count >= u64::from(min_count)
+                            && s.ratio >= ratio)
+                        {
+                            continue;
+                        }
+                        ev.count = Some(s.count as u32);
+                        ev.exposure_nights = Some(s.exposure_nights);
+                        ev.window_hours = Some(f64::from(hours));
+                        ev.gamma_shape = Some(s.gamma_shape);
+                        ev.gamma_rate = Some(s.gamma_rate);
+                        ev.expected = Some(s.expected);
+                        ev.ratio = Some(s.ratio);
+                        ev.p_value = Some(s.p_value);
+                        ev.baseline_from = Some(s.baseline_from);
+                        ev.baseline_to = Some(s.baseline_to);
+                        crate::notify::Trigger::Spike
+                    }
+                };
+                self.decided.insert((sub, wi, id.clone()));
+                let event_id = event_key(&id);
+                self.decide(
+                    sub,
+                    wi,
+                    site,
+                    trigger,
+                    Some(&event),
+                    event_id,
+                    event.start,
+                    ev,
+                    now,
+                    out,
+                );
+            }
+        }
+    }
+
+    /// No event of `species` at any site the subscriber covers in the
+    /// `quiet_days` before `start`, and those sites were deployed over that
+    /// whole span (otherwise "not seen" only means "not watched").
+    fn first_seen(&self, sub: usize, species: &str, start: DateTime<Utc>, quiet_days: u32) -> bool {
+        let from = start - Duration::days(i64::from(quiet_days));
+        let sites = self.rules.sites_of(sub);
+        let watched = sites
+            .iter()
+            .any(|&s| self.rules.site(s).deployment_start <= from);
+        watched
+            && sites.iter().all(|&s| {
+                self.ledger.count_starting_in(
+                    &self.rules.site(s).deployment_id,
+                    species,
+                    from,
+                    start,
+                ) == 0
+            })
+    }
+
+    /// The spike test at `site` for the `hours` ending at `at` (inclusive).
+    fn spike_evidence(
+        &mut self,
+        site: usize,
+        species: &str,
+        at: DateTime<Utc>,
+        hours: u32,
+        ratio: f64,
+        min_count: u32,
+    ) -> Option<SpikeEvidence> {
+        let to = at + Duration::milliseconds(1);
+        let from = to - Duration::hours(i64::from(hours));
+        let dep = self.rules.site(site).deployment_id.clone();
+        let count = self.ledger.count_starting_in(&dep, species, from, to);
+        let exposure = self.uptime[site].camera_nights(from, to, at);
+        let b = self.cfg.baseline.clone();
+        let window = baseline_window(from, to, b.window_days, b.guard_days).ok()?;
+        let history_events = self
+            .ledger
+            .count_starting_in(&dep, species, window.from, window.to);
+        let history_nights = self.uptime[site].camera_nights(window.from, window.to, at);
+        let regional_rate = self.regional_rate(species, window.from, window.to, at);
+        let input = SpikeInput {
+            count,
+            exposure_nights: exposure,
+            history_events,
+            history_nights,
+            regional_rate,
+            baseline: window,
+        };
+        let params = SpikeParams {
+            alpha: b.alpha,
+            min_count: u64::from(min_count),
+            ratio,
+            prior_nights: b.prior_nights,
+        };
+        spike_test(&input, &params).ok()
+    }
+
+    /// Events per camera-night of `species` over all sites in the window,
+    /// cached per window-end hour.
+    fn regional_rate(
+        &mut self,
+        species: &str,
+        from: DateTime<Utc>,
+        to: DateTime<Utc>,
+        now: DateTime<Utc>,
+    ) -> f64 {
+        let key = (species.to_string(), to.timestamp().div_euclid(3600));
+        if let Some(r) = self.regional.get(&key) {
+            return *r;
+        }
+        let mut events = 0u64;
+        let mut nights = 0.0;
+        for (i, s) in self.rules.sites().iter().enumerate() {
+            events += self
+                .ledger
+                .count_starting_in(&s.deployment_id, species, from, to);
+            nights += self.uptime[i].camera_nights(from, to, now);
+        }
+        let r = crate::activity::regional_rate(events, nights);
+        if self.regional.len() > 10_000 {
+            self.regional.clear();
+        }
+        self.regional.insert(key, r);
+        r
+    }
+
+    /// Time-driven checks: silence episodes.
+    pub fn tick(&mut self, now: DateTime<Utc>) -> Vec<Output> {
+        let mut out = Vec::new();
+        if self.quiet {
+            return out;
+        }
+        for (sub, wi, site) in self.rules.silence_watches().to_vec() {
+            if self.silent.contains_key(&(sub, wi, site)) {
+                continue;
+            }
+            let s = self.rules.site(site);
+            if s.deployment_end.is_some_and(|e| e <= now) {
+                continue;
+            }
+            let w = &self.cfg.subscribers[sub].watches[wi];
+            let limit = Duration::seconds((w.silence_hours * 3600.0) as i64);
+            let last = self.last_sign[site];
+            if now - last > limit {
+                self.silent.insert((sub, wi, site), last);
+                let hours = (now - last).num_minutes() as f64 / 60.0;
+                let ev = Evidence {
+                    silent_hours: Some(round2(hours)),
+                    ..Default::default()
+                };
+                let event_id = format!("silence:{}:{}", s.deployment_id, rfc(last));
+                self.decide(
+                    sub,
+                    wi,
+                    site,
+                    crate::notify::Trigger::Silence,
+                    None,
+                    event_id,
+                    last,
+                    ev,
+                    now,
+                    &mut out,
+                );
+            }
+        }
+        out
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn decide(
+        &mut self,
+        sub: usize,
+        wi: usize,
+        site: usize,
+        trigger: crate::notify::Trigger,
+        event: Option<&IndependentEvent>,
+        event_id: String,
+        event_time: DateTime<Utc>,
+        mut evidence: Evidence,
+        now: DateTime<Utc>,
+        out: &mut Vec<Output>,
+    ) {
+        let s = &self.cfg.subscribers[sub];
+        let w = &s.watches[wi];
+        let site_info = self.rules.site(site);
+        let species = event.map(|e| e.scientific_name.clone());
+        evidence.rule = Some(format!("{}/{}", s.id, w.name));
+        evidence.clock_time = Some(now);
+        let key = FoldKey {
+            subscriber: s.id.clone(),
+            watch: w.name.clone(),
+            deployment: site_info.deployment_id.clone(),
+            species: species.clone().unwrap_or_default(),
+        };
+        let in_quiet_hours = s
+            .quiet_hours
+            .as_ref()
+            .is_some_and(|q| q.contains_time(now.with_timezone(&s.timezone).time()));
+        let cand = Candidate {
+            key: key.clone(),
+            event_id: event_id.clone(),
+            event_time,
+            count: event.map(|e| e.count).unwrap_or(0),
+            urgent: w.urgent,
+            in_quiet_hours,
+            cooldown_minutes: w.cooldown_minutes,
+            max_per_hour: s.max_per_hour,
+        };
+        let decision = self.policy.on_candidate(&cand, now);
+        let folded = if matches!(decision, Decision::SendNow { .. }) {
+            self.policy.take_folded(&key)
+        } else {
+            Vec::new()
+        };
+        let meta = event.and_then(|e| self.meta.get(&e.id()));
+        let notice = Notice {
+            subscriber_id: s.id.clone(),
+            subscriber_name: s.name.clone(),
+            watch: w.name.clone(),
+            urgent: w.urgent,
+            trigger,
+            deployment_id: site_info.deployment_id.clone(),
+            site_label: site_info.label().to_string(),
+            latitude: site_info.latitude,
+            longitude: site_info.longitude,
+            scientific_name: species,
+            vernacular_name: meta.and_then(|m| m.vernacular_name.clone()),
+            event_id,
+            event_time,
+            at: now,
+            disposition: decision.disposition(),
+            evidence,
+            image_url: meta.and_then(|m| m.file_path.clone()),
+            folded,
+        };
+        if notice.disposition == Disposition::Sent {
+            if let Some(e) = event {
+                self.sent_for
+                    .entry(e.id())
+                    .or_default()
+                    .push(notice.clone());
+            }
+        }
+        out.push(Output::Notice {
+            notice: Box::new(notice),
+            reason: decision.reason().to_string(),
+            channels: w.channels.clone(),
+        });
+    }
+
+    /// Records an event change; returns events that were removed outright.
+    fn store_change(&mut self, change: &Change, out: &mut Vec<Output>) -> Vec<EventId> {
+        let mut removed = Vec::new();
+        let upsert = |this: &mut Self, id: &EventId, out: &mut Vec<Output>| {
+            if let Some(e) = this.ledger.event(id) {
+                out.push(Output::EventUpsert(e));
+            }
+        };
+        match change {
+            Change::NewEvent(id) => upsert(self, id, out),
+            Change::Extended { old, new } | Change::Updated { old, new } => {
+                if old != new {
+                    out.push(Output::EventDelete(old.clone()));
+                    self.move_meta(old, new);
+                }
+                upsert(self, new, out);
+            }
+            Change::Merged { old, new } => {
+                for o in old.iter().filter(|o| *o != new) {
+                    out.push(Output::EventDelete(o.clone()));
+                    self.move_meta(o, new);
+                }
+                upsert(self, new, out);
+            }
+            Change::Split { old, new } => {
+                if !new.contains(old) {
+                    out.push(Output::EventDelete(old.clone()));
+                }
+                for n in new {
+                    upsert(self, n, out);
+                }
+            }
+            Change::Removed(id) => {
+                out.push(Output::EventDelete(id.clone()));
+                removed.push(id.clone());
+            }
+            Change::Relabelled {
+                retracted,
+                inserted,
+            } => {
+                removed.extend(self.store_change(retracted, out));
+                self.store_change(inserted, out);
+            }
+            Change::Duplicate | Change::TooOld | Change::Unknown => {}
+        }
+        removed
+    }
+
+    fn move_meta(&mut self, old: &EventId, new: &EventId) {
+        if let Some(m) = self.meta.remove(old) {
+            let e = self.meta.entry(new.clone()).or_default();
+            e.best_probability = e.best_probability.max(m.best_probability);
+            if e.vernacular_name.is_none() {
+                e.vernacular_name = m.vernacular_name;
+            }
+            if e.file_path.is_none() {
+                e.file_path = m.file_path;
+            }
+        }
+        if let Some(n) = self.sent_for.remove(old) {
+            self.sent_for.entry(new.clone()).or_default().extend(n);
+        }
+    }
+
+    /// A retraction took away an event that notices were sent for: tell
+    /// those subscribers, once each.
+    fn follow_up(
+        &mut self,
+        id: &EventId,
+        observation_id: &str,
+        now: DateTime<Utc>,
+        out: &mut Vec<Output>,
+    ) {
+        let Some(sent) = self.sent_for.remove(id) else {
+            return;
+        };
+        for mut n in sent {
+            let channels = self
+                .cfg
+                .subscribers
+                .iter()
+                .find(|s| s.id == n.subscriber_id)
+                .and_then(|s| s.watches.iter().find(|w| w.name == n.watch))
+                .map(|w| w.channels.clone())
+                .unwrap_or_default();
+            n.trigger = crate::notify::Trigger::Retraction;
+            n.event_id = format!("{}:retracted:{observation_id}", n.event_id);
+            n.at = now;
+            n.disposition = Disposition::Sent;
+            n.folded.clear();
+            n.evidence.clock_time = Some(now);
+            out.push(Output::Notice {
+                notice: Box::new(n),
+                reason: "the observation this notice was based on was corrected".into(),
+                channels,
+            });
+        }
+    }
+
+    fn maybe_prune(&mut self, now: DateTime<Utc>) {
+        if self
+            .last_prune
+            .is_some_and(|t| now - t < Duration::hours(6))
+        {
+            return;
+        }
+        self.last_prune = Some(now);
+        let cutoff = now - self.horizon();
+        self.ledger.prune_before(cutoff);
+        self.meta.retain(|id, _| id.start >= cutoff);
+        self.decided.retain(|(_, _, id)| id.start >= cutoff);
+        self.sent_for.retain(|id, _| id.start >= cutoff);
+        self.policy.prune(now);
+    }
+}
+
+/// Applies a correction to a ledger: a type other than `animal` retracts
+/// the observation; a new name or count relabels it. Shared by the engine
+/// and `outrider rebuild`, so both read corrections the same way.
+pub fn correct(ledger: &mut EventLedger, c: &crate::model::Correction) -> Change {
+    match (c.observation_type, &c.scientific_name) {
+        (Some(t), _) if t != ObservationType::Animal => ledger.retract(&c.observation_id),
+        (_, Some(name)) => {
+            let count = c
+                .count
+                .or_else(|| ledger.event_of(&c.observation_id).map(|e| e.count))
+                .unwrap_or(1);
+            ledger.relabel(&c.observation_id, name, count)
+        }
+        (_, None) => match (c.count, ledger.event_of(&c.observation_id)) {
+            (Some(count), Some(ev)) => {
+                ledger.relabel(&c.observation_id, &ev.scientific_name, count)
+            }
+            _ => Change::Unknown,
+        },
+    }
+}
+
+/// A stable text key of an event.
+pub fn event_key(id: &EventId) -> String {
+    format!(
+        "{}:{}:{}",
+        id.deployment_id,
+        id.scientific_name.replace(' ', "_"),
+        rfc(id.start)
+    )
+}
+
+fn rfc(t: DateTime<Utc>) -> String {
+    t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)
+}
+
+fn round2(v: f64) -> f64 {
+    (v * 100.0).round() / 100.0
+}
+
+/// Never reached: sites were validated at load (end after start, silence > 0).
+fn unreachable_uptime(start: DateTime<Utc>) -> Uptime {
+    match Uptime::new(start, None, Duration::hours(36)) {
+        Ok(u) => u,
+        Err(_) => unreachable!("a 36 h silence limit is positive"),
+    }
+}
+
+#[cfg(test)]
+mod tests;
