@@ -22,6 +22,9 @@ use tokio_util::sync::CancellationToken;
 /// the MQTT loop pauses and the broker holds the rest, unacknowledged.
 const PIPELINE_QUEUE: usize = 2048;
 
+/// How often the outbox worker looks for due deliveries.
+const OUTBOX_EVERY: Duration = Duration::from_millis(500);
+
 /// How often the time-driven checks (silent cameras) run.
 const TICK_EVERY: Duration = Duration::from_secs(1);
 
@@ -87,6 +90,7 @@ where
         cfg.detection.max_payload_bytes.max(crate::MAX_WIRE_PAYLOAD),
     )?;
     let (client, eventloop) = mqtt::connect(opts);
+    let client_for_outbox = client.clone();
     let (tx, rx) = tokio::sync::mpsc::channel(PIPELINE_QUEUE);
     // Acknowledgements from the pipeline to the MQTT loop. The loop always
     // drains this channel, so the pipeline waits here only briefly.
@@ -131,6 +135,20 @@ where
         stop_reading.clone(),
         pipeline_done.clone(),
     ));
+    let outbox_stop = CancellationToken::new();
+    let outbox_task = {
+        let channels = crate::outbox::Channels::from_config(&cfg, Some(client_for_outbox))?;
+        let key = crate::outbox::link_key(&cfg.service.state_dir)?;
+        tokio::spawn(crate::outbox::run(
+            store.clone(),
+            Arc::new(cfg.clone()),
+            channels,
+            key,
+            clock.clone(),
+            OUTBOX_EVERY,
+            outbox_stop.clone(),
+        ))
+    };
     tracing::info!(broker = %cfg.mqtt.url, state_dir = %cfg.service.state_dir.display(), sites = cfg.sites.sites.len(), subscribers = cfg.subscribers.len(), "outrider running");
     on_start(&Running {
         store: store.clone(),
@@ -140,14 +158,40 @@ where
     shutdown.await;
     tracing::info!("Shutting down: finishing the batch in hand");
     stop_reading.cancel();
-    let deadline = Duration::from_secs(cfg.service.shutdown_timeout_seconds);
-    if tokio::time::timeout(deadline, pipeline_task).await.is_err() {
+    outbox_stop.cancel();
+    // The whole stop fits in shutdown_timeout_seconds (default 5 s): a task
+    // that is still busy then is aborted; what it had in hand stays
+    // unacknowledged (the broker redelivers) or pending (retried at start).
+    let deadline =
+        tokio::time::Instant::now() + Duration::from_secs(cfg.service.shutdown_timeout_seconds);
+    let mut pipeline_task = pipeline_task;
+    if tokio::time::timeout_at(deadline - Duration::from_millis(1500), &mut pipeline_task)
+        .await
+        .is_err()
+    {
         tracing::warn!(
             "Pipeline did not finish in time; its messages stay unacknowledged at the broker"
         );
+        pipeline_task.abort();
         pipeline_done.cancel();
+        let _ = pipeline_task.await;
     }
-    let _ = tokio::time::timeout(Duration::from_secs(1), mqtt_task).await;
+    let mut mqtt_task = mqtt_task;
+    if tokio::time::timeout_at(deadline - Duration::from_millis(500), &mut mqtt_task)
+        .await
+        .is_err()
+    {
+        mqtt_task.abort();
+    }
+    let mut outbox_task = outbox_task;
+    if tokio::time::timeout_at(deadline, &mut outbox_task)
+        .await
+        .is_err()
+    {
+        tracing::warn!("A delivery in progress did not finish in time; it stays pending and is retried at the next start");
+        outbox_task.abort();
+        let _ = outbox_task.await;
+    }
     drop(store);
     // The store thread exits once every handle is gone; wait for it off the runtime.
     let _ = tokio::task::spawn_blocking(move || store_thread.join()).await;

@@ -65,6 +65,13 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Recompute the independent events from the raw observations (with
+    /// their corrections). Stop the daemon first.
+    Rebuild(ConfigArg),
+    /// Run an archive through the same core on a simulated clock and print
+    /// one JSON object per notice (stdout) and a per-subscriber summary
+    /// (stderr). Nothing is sent or stored.
+    Replay(ReplayArgs),
     /// Copy the store to a file, safely while the daemon runs; check the
     /// copy and print its row counts.
     Backup {
@@ -92,4 +99,26 @@ pub enum Command {
         #[arg(long, value_name = "N", default_value_t = 256, value_parser = clap::value_parser!(i32).range(1..))]
         pages_per_step: i32,
     },
+}
+
+#[derive(Debug, Args)]
+pub struct ReplayArgs {
+    /// The configuration file (TOML).
+    #[arg(short = 'c', long = "config", value_name = "FILE")]
+    pub config: PathBuf,
+    /// The archive: a CSV with Camtrap DP observation columns, or JSON lines
+    /// of messages ({"topic": ..., "payload": {...}}).
+    #[arg(long, value_name = "ARCHIVE")]
+    pub observations: PathBuf,
+    /// Heartbeats (JSON lines of messages, or a CSV with deploymentID and
+    /// timestamp columns). Without them a deployment counts as operating
+    /// from deploymentStart to deploymentEnd, and silence is not judged.
+    #[arg(long, value_name = "FILE")]
+    pub heartbeats: Option<PathBuf>,
+    /// Only messages at or after this instant (RFC 3339).
+    #[arg(long, value_name = "T")]
+    pub from: Option<String>,
+    /// Only messages before this instant (RFC 3339).
+    #[arg(long, value_name = "T")]
+    pub to: Option<String>,
 }

@@ -96,6 +96,25 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
                 print!("{}", outrider::status::render_text(&s));
             }
         }
+        Command::Rebuild(a) => {
+            let cfg = load(&a.config)?;
+            let mut db = outrider::store::sqlite::Sqlite::open(
+                &cfg.service.state_dir,
+                outrider::store::sqlite::Durability::Full,
+            )?;
+            let started = std::time::Instant::now();
+            let (read, written) = db.rebuild_events(chrono::Duration::minutes(i64::from(
+                cfg.detection.independence_minutes,
+            )))?;
+            println!(
+                "rebuilt {written} independent events from {read} observations in {:.2} s",
+                started.elapsed().as_secs_f64()
+            );
+        }
+        Command::Replay(a) => {
+            let cfg = load(&a.config)?;
+            return outrider::replay::run(&cfg, &a);
+        }
         Command::Backup {
             config,
             state_dir,

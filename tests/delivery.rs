@@ -27,15 +27,15 @@ use crate::util::{free_port, python, repo};
 // ---------------------------------------------------------------- harness
 
 /// A Python server started for one test; killed when dropped.
-struct Sink {
-    port: u16,
-    dir: PathBuf,
+pub struct Sink {
+    pub port: u16,
+    pub dir: PathBuf,
     child: Child,
     _stdin: ChildStdin,
 }
 
 impl Sink {
-    fn start(script: &str, dir: &Path, args: &[&str]) -> Sink {
+    pub fn start(script: &str, dir: &Path, args: &[&str]) -> Sink {
         std::fs::create_dir_all(dir).unwrap();
         let port = free_port();
         let mut cmd = Command::new(python());
@@ -73,16 +73,16 @@ impl Sink {
         }
     }
 
-    fn smtp(dir: &Path, args: &[&str]) -> Sink {
+    pub fn smtp(dir: &Path, args: &[&str]) -> Sink {
         Sink::start("smtp_sink.py", dir, args)
     }
 
-    fn webhook(dir: &Path, args: &[&str]) -> Sink {
+    pub fn webhook(dir: &Path, args: &[&str]) -> Sink {
         Sink::start("webhook_sink.py", dir, args)
     }
 
     /// The JSON lines the sink logged to `file`.
-    fn log(&self, file: &str) -> Vec<Value> {
+    pub fn log(&self, file: &str) -> Vec<Value> {
         std::fs::read_to_string(self.dir.join(file))
             .unwrap_or_default()
             .lines()
@@ -91,7 +91,7 @@ impl Sink {
     }
 
     /// The `.eml` files the SMTP sink stored, in order.
-    fn messages(&self) -> Vec<PathBuf> {
+    pub fn messages(&self) -> Vec<PathBuf> {
         eml_files(&self.dir)
     }
 }
@@ -123,7 +123,7 @@ fn block_on<F: std::future::Future>(f: F) -> F::Output {
 
 /// A stored message as Python's `email` package reads it
 /// (`smtp_sink.py parse`).
-fn parse_eml(path: &Path) -> Value {
+pub fn parse_eml(path: &Path) -> Value {
     let out = Command::new(python())
         .arg(repo().join("tests/clients/smtp_sink.py"))
         .arg("parse")
@@ -149,7 +149,7 @@ fn header_values(parsed: &Value, name: &str) -> Vec<String> {
         .collect()
 }
 
-fn one_header(parsed: &Value, name: &str) -> String {
+pub fn one_header(parsed: &Value, name: &str) -> String {
     let v = header_values(parsed, name);
     assert_eq!(v.len(), 1, "{name}: {v:?}");
     v[0].clone()
@@ -157,7 +157,7 @@ fn one_header(parsed: &Value, name: &str) -> String {
 
 /// The decoded content of the leaf part with `content_type` directly
 /// under a `multipart/alternative` root.
-fn part(parsed: &Value, content_type: &str) -> String {
+pub fn part(parsed: &Value, content_type: &str) -> String {
     let tree = &parsed["tree"];
     assert_eq!(tree["content_type"], "multipart/alternative", "{tree}");
     let parts = tree["parts"].as_array().unwrap();

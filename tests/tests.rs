@@ -9,4 +9,5 @@ mod config_examples;
 mod delivery;
 mod deploy;
 mod ingest;
+mod notices;
 mod util;

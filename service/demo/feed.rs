@@ -42,8 +42,8 @@ impl Default for Scenario {
     fn default() -> Self {
         Self {
             silent_from: Duration::hours(-11) - Duration::minutes(30),
-            spike_window: (Duration::hours(-8), Duration::hours(16)),
-            spike_rate_per_night: 6.0,
+            spike_window: (Duration::minutes(10), Duration::hours(12)),
+            spike_rate_per_night: 36.0,
             pig_at: Duration::minutes(20),
             deer_at: Duration::minutes(50),
         }
@@ -148,14 +148,16 @@ impl Feed {
                 rate = 0.0;
             }
             let (s0, s1) = self.scenario.spike_window;
+            let mut per_hour = rate * hour_weight(sp.rhythm, local_hour);
             if sp.scientific_name == "Canis familiaris"
                 && site.id == "KB-07"
-                && offset >= s0
+                && offset + Duration::hours(1) > s0
                 && offset < s1
             {
-                rate = self.scenario.spike_rate_per_night;
+                // A pack around the lambing paddock, day and night alike.
+                per_hour = self.scenario.spike_rate_per_night / 24.0;
             }
-            let n = poisson(&mut rng, rate * hour_weight(sp.rhythm, local_hour));
+            let n = poisson(&mut rng, per_hour);
             for k in 0..n {
                 let at = start + Duration::seconds(rng.gen_range(0..3600));
                 let group = rng.gen_range(1..=sp.max_group);

@@ -199,6 +199,16 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
         history_from - Duration::days(30),
     )?;
     let cfg = crate::config::load(&cfg_path).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let prefix_for_history = cfg.mqtt.topic_prefix.clone();
+    let history_cfg = cfg.clone();
+    let loaded = tokio::task::spawn_blocking(move || {
+        preload(&history_cfg, &prefix_for_history, history_from, start)
+    })
+    .await??;
+    println!(
+        "  history: {loaded} messages of {} days stored as if received live",
+        opts.history_days
+    );
     let clock: Arc<dyn Clock> = Arc::new(ScaledClock::new(start, opts.speed));
     let prefix = cfg.mqtt.topic_prefix.clone();
     let dir = opts.state_dir.clone();
@@ -229,7 +239,7 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
     };
     let feed_clock = clock.clone();
     crate::app::run(cfg, clock, shutdown, move |_running| {
-        tokio::spawn(publish_feed(port, prefix, start, history_from, feed_clock));
+        tokio::spawn(publish_feed(port, prefix, start, feed_clock));
     })
     .await?;
     let status = crate::status::read(&dir, crate::config::load(&cfg_path).ok().as_ref(), real_now)?;
@@ -237,15 +247,51 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
     Ok(())
 }
 
-/// Publishes the history at once, then the feed as simulated time passes,
-/// over real MQTT.
-async fn publish_feed(
-    port: u16,
-    prefix: String,
-    start: DateTime<Utc>,
-    history_from: DateTime<Utc>,
-    clock: Arc<dyn Clock>,
-) {
+/// Writes the feed's history `[from, to)` into the store through the same
+/// decoder the daemon uses (each message as if it arrived 30 s after its
+/// own time), then derives the independent events from it. Returns the
+/// number of messages.
+pub fn preload(
+    cfg: &crate::config::Config,
+    prefix: &str,
+    from: DateTime<Utc>,
+    to: DateTime<Utc>,
+) -> anyhow::Result<usize> {
+    use crate::store::Backend;
+    let facts = crate::pipeline::DecodeFacts::from_config(cfg);
+    let mut db = crate::store::sqlite::Sqlite::open(
+        &cfg.service.state_dir,
+        crate::store::sqlite::Durability::Normal,
+    )?;
+    let feed = feed::Feed::new(to, prefix, 2026);
+    let mut n = 0;
+    let mut day = from;
+    while day < to {
+        let next = (day + Duration::days(1)).min(to);
+        let batch: Vec<crate::store::Ingest> = feed
+            .between(day, next)
+            .iter()
+            .map(|m| {
+                crate::pipeline::to_ingest(
+                    &facts,
+                    &m.topic,
+                    &m.payload,
+                    m.at + Duration::seconds(30),
+                )
+            })
+            .collect();
+        n += batch.len();
+        db.commit(&batch, &[])?;
+        day = next;
+    }
+    db.rebuild_events(Duration::minutes(i64::from(
+        cfg.detection.independence_minutes,
+    )))?;
+    Ok(n)
+}
+
+/// Publishes the feed as simulated time passes, over real MQTT.
+async fn publish_feed(port: u16, prefix: String, start: DateTime<Utc>, clock: Arc<dyn Clock>) {
     let mut o = MqttOptions::new("outriderdemofeed", "127.0.0.1", port);
     o.set_keep_alive(std::time::Duration::from_secs(30))
         .set_max_packet_size(2 << 20, 2 << 20);
@@ -258,7 +304,7 @@ async fn publish_feed(
         }
     });
     let feed = feed::Feed::new(start, prefix, 2026);
-    let mut sent_to = history_from;
+    let mut sent_to = start;
     loop {
         let now = clock.now();
         for m in feed.between(sent_to, now) {

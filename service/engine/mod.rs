@@ -83,6 +83,16 @@ pub struct Engine {
     last_prune: Option<DateTime<Utc>>,
     /// While warming, nothing is notified (history is being loaded).
     quiet: bool,
+    options: Options,
+}
+
+/// How the engine runs.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Options {
+    /// Count every deployment as operating from deploymentStart to
+    /// deploymentEnd whatever the signs of life, and judge no silence
+    /// (replay of an archive without heartbeats).
+    pub assume_operating: bool,
 }
 
 /// Observations with no probability (e.g. labelled by a person) count as certain.
@@ -92,9 +102,17 @@ fn probability(o: &Observation) -> f64 {
 
 impl Engine {
     pub fn new(cfg: Arc<Config>) -> Self {
+        Self::with_options(cfg, Options::default())
+    }
+
+    pub fn with_options(cfg: Arc<Config>, options: Options) -> Self {
         let rules = RuleBook::compile(&cfg);
-        let silence =
-            Duration::seconds((cfg.sites.silence_hours * 3600.0) as i64).max(Duration::seconds(1));
+        let silence = if options.assume_operating {
+            // Up from deploymentStart to deploymentEnd without signs of life.
+            Duration::days(365 * 200)
+        } else {
+            Duration::seconds((cfg.sites.silence_hours * 3600.0) as i64).max(Duration::seconds(1))
+        };
         let uptime = cfg
             .sites
             .sites
@@ -119,6 +137,7 @@ impl Engine {
             regional: HashMap::new(),
             last_prune: None,
             quiet: false,
+            options,
             cfg,
         }
     }
@@ -302,9 +321,14 @@ impl Engine {
                 if self.decided.contains(&(sub, wi, id.clone())) {
                     continue;
                 }
+                let distance_from = Some(match self.cfg.subscribers[sub].area {
+                    crate::geo::Area::Circle(_) => crate::notify::notice::DistanceFrom::Centre,
+                    _ => crate::notify::notice::DistanceFrom::Area,
+                });
                 let mut ev = Evidence {
                     count: Some(event.count),
                     distance_km: Some(round2(distance_km)),
+                    distance_from,
                     ..Default::default()
                 };
                 let trigger = match w.trigger {
@@ -463,7 +487,7 @@ impl Engine {
     /// Time-driven checks: silence episodes.
     pub fn tick(&mut self, now: DateTime<Utc>) -> Vec<Output> {
         let mut out = Vec::new();
-        if self.quiet {
+        if self.quiet || self.options.assume_operating {
             return out;
         }
         for (sub, wi, site) in self.rules.silence_watches().to_vec() {

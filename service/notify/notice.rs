@@ -142,10 +142,15 @@ pub struct Evidence {
     /// End (exclusive) of the baseline window.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub baseline_to: Option<DateTime<Utc>>,
-    /// Geodesic distance from the site to the subscriber's area; `0.0` when
-    /// the site is inside the area.
+    /// Geodesic distance in km shown on the notice: for a polygon area from
+    /// the site to the area (`0.0` inside); for a circle area from the
+    /// circle's centre (see `distance_from`).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub distance_km: Option<f64>,
+    /// What `distance_km` is measured to: `centre` for a circle area,
+    /// `area` (the default) otherwise.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub distance_from: Option<DistanceFrom>,
     /// Days without the species at the site before this event (first-seen).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub quiet_days: Option<u32>,
@@ -159,6 +164,16 @@ pub struct Evidence {
     /// replay).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub clock_time: Option<DateTime<Utc>>,
+}
+
+/// What a notice's distance is measured to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum DistanceFrom {
+    /// The centre of a circle area (the point the subscriber gave).
+    Centre,
+    /// The area itself: 0 inside, else to its boundary.
+    Area,
 }
 
 /// One earlier event carried by a notice (it arrived during a cooldown).

@@ -284,8 +284,11 @@ impl Message {
         let when = local_time(n.event_time, tz);
         let e = &n.evidence;
 
+        let from_centre = e.distance_from == Some(crate::notify::notice::DistanceFrom::Centre);
         let distance = e.distance_km.filter(|d| d.is_finite()).map(|d| {
-            if d <= 0.0 {
+            if from_centre {
+                format!("{} km from the centre of your area.", km(d))
+            } else if d <= 0.0 {
                 "Inside your area.".to_owned()
             } else {
                 format!("{} km from your area.", km(d))

@@ -119,6 +119,18 @@ pub trait Backend: Send + 'static {
     /// heartbeats by their own time), then the corrections of those
     /// observations in arrival order: what the engine needs to warm up.
     fn history(&mut self, since: DateTime<Utc>) -> Result<Vec<Message>, StoreError>;
+    /// Pending deliveries due at `now`, oldest first.
+    fn due_deliveries(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<sqlite::DueDelivery>, StoreError>;
+    /// Records the outcome of a delivery attempt.
+    fn finish_delivery(
+        &mut self,
+        id: i64,
+        update: &sqlite::DeliveryUpdate,
+    ) -> Result<(), StoreError>;
     /// Flushes what can be flushed before the process exits.
     fn close(&mut self) -> Result<(), StoreError>;
 }

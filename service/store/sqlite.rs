@@ -143,7 +143,7 @@ fn store_derived(tx: &rusqlite::Transaction<'_>, d: &Output) -> rusqlite::Result
             let mut body = notice.replay_line();
             body["reason"] = serde_json::Value::String(reason.clone());
             let n = tx
-                .prepare_cached("INSERT INTO notices (id, subscriber_id, watch, trigger, deployment_id, scientific_name, event_id, event_time, at, disposition, reason, body) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12) ON CONFLICT (id) DO NOTHING")?
+                .prepare_cached("INSERT INTO notices (id, subscriber_id, watch, trigger, deployment_id, scientific_name, event_id, event_time, at, disposition, reason, body, notice) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13) ON CONFLICT (id) DO NOTHING")?
                 .execute(params![
                     id.as_str(),
                     notice.subscriber_id,
@@ -157,6 +157,7 @@ fn store_derived(tx: &rusqlite::Transaction<'_>, d: &Output) -> rusqlite::Result
                     notice.disposition.as_str(),
                     reason,
                     body.to_string(),
+                    serde_json::to_string(notice.as_ref()).unwrap_or_default(),
                 ])?;
             if n == 1 && notice.disposition == crate::notify::Disposition::Sent {
                 for c in channels {
@@ -463,6 +464,18 @@ impl Backend for Sqlite {
         load_history(&self.conn, since)
     }
 
+    fn due_deliveries(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<DueDelivery>, StoreError> {
+        Sqlite::due_deliveries(self, now, limit)
+    }
+
+    fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
+        Sqlite::finish_delivery(self, id, update)
+    }
+
     fn close(&mut self) -> Result<(), StoreError> {
         // Fold the WAL back into the main file so a copy of outrider.db alone
         // is a complete backup after a clean stop.
@@ -515,5 +528,96 @@ impl Sqlite {
         }
         tx.commit()?;
         Ok((read, written))
+    }
+}
+
+/// A delivery that is due.
+#[derive(Debug, Clone)]
+pub struct DueDelivery {
+    pub id: i64,
+    pub channel: String,
+    pub attempts: u32,
+    pub first_attempt_at: Option<DateTime<Utc>>,
+    pub notice: crate::notify::Notice,
+}
+
+/// What became of one attempt.
+#[derive(Debug, Clone, PartialEq)]
+pub enum DeliveryUpdate {
+    Sent {
+        at: DateTime<Utc>,
+    },
+    Retry {
+        at: DateTime<Utc>,
+        next: DateTime<Utc>,
+        error: String,
+    },
+    Failed {
+        at: DateTime<Utc>,
+        error: String,
+    },
+}
+
+impl Sqlite {
+    /// Pending deliveries due at `now`, oldest first.
+    pub fn due_deliveries(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<DueDelivery>, StoreError> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT d.id, d.channel, d.attempts, d.first_attempt_at, n.notice FROM deliveries d JOIN notices n ON n.id = d.notice_id
+             WHERE d.state = 'pending' AND d.next_attempt_at <= ?1 ORDER BY d.next_attempt_at, d.id LIMIT ?2",
+        )?;
+        let rows = stmt.query_map(params![ms(now), limit as i64], |r| {
+            Ok((
+                r.get::<_, i64>(0)?,
+                r.get::<_, String>(1)?,
+                r.get::<_, i64>(2)?,
+                r.get::<_, Option<i64>>(3)?,
+                r.get::<_, String>(4)?,
+            ))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (id, channel, attempts, first, notice) = row?;
+            match serde_json::from_str(&notice) {
+                Ok(notice) => out.push(DueDelivery {
+                    id,
+                    channel,
+                    attempts: attempts.max(0) as u32,
+                    first_attempt_at: first.map(from_ms),
+                    notice,
+                }),
+                Err(e) => {
+                    // Written by this program, so this means a damaged row:
+                    // fail it rather than retry it for ever.
+                    self.conn.execute(
+                        "UPDATE deliveries SET state = 'failed', last_error = ?2 WHERE id = ?1",
+                        params![id, format!("unreadable notice: {e}")],
+                    )?;
+                }
+            }
+        }
+        Ok(out)
+    }
+
+    /// Records the outcome of an attempt.
+    pub fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
+        match update {
+            DeliveryUpdate::Sent { at } => self.conn.execute(
+                "UPDATE deliveries SET state = 'sent', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = NULL WHERE id = ?1",
+                params![id, ms(*at)],
+            )?,
+            DeliveryUpdate::Retry { at, next, error } => self.conn.execute(
+                "UPDATE deliveries SET attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), next_attempt_at = ?3, last_error = ?4 WHERE id = ?1",
+                params![id, ms(*at), ms(*next), error],
+            )?,
+            DeliveryUpdate::Failed { at, error } => self.conn.execute(
+                "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = ?3 WHERE id = ?1",
+                params![id, ms(*at), error],
+            )?,
+        };
+        Ok(())
     }
 }

@@ -26,8 +26,10 @@ CREATE TABLE notices (
     at               INTEGER NOT NULL,
     disposition      TEXT NOT NULL,
     reason           TEXT NOT NULL,
-    -- The notice as JSON (the replay line shape), for renderers and the API.
-    body             TEXT NOT NULL
+    -- The notice as JSON (the replay line shape), for the API.
+    body             TEXT NOT NULL,
+    -- The notice itself (serde), for the delivery worker's renderers.
+    notice           TEXT NOT NULL
 );
 CREATE INDEX notices_by_subscriber ON notices (subscriber_id, at);
 CREATE INDEX notices_by_at ON notices (at);
