@@ -30,10 +30,12 @@ use crate::activity::{
     baseline_window, spike_test, Change, EventId, EventLedger, IndependentEvent, SpikeEvidence,
     SpikeInput, SpikeParams, Trigger, Uptime,
 };
+use crate::activity::{cusum, CusumParams, CusumState, GammaRate};
+use crate::calendar::{local_date_of, local_day_bounds};
 use crate::config::{Config, TriggerKind};
 use crate::model::{Message, Observation, ObservationType};
 use crate::notify::{Candidate, Decision, Disposition, Evidence, FoldKey, Notice, Policy};
-use chrono::{DateTime, Duration, Utc};
+use chrono::{DateTime, Duration, NaiveDate, Utc};
 use rules::RuleBook;
 use std::collections::{HashMap, HashSet};
 use std::sync::Arc;
@@ -84,7 +86,17 @@ pub struct Engine {
     /// While warming, nothing is notified (history is being loaded).
     quiet: bool,
     options: Options,
+    /// Species of a notice that has no single event (build-up), for `decide`.
+    species_override: Option<String>,
+    /// CUSUM statistic per (subscriber, watch, site, species).
+    cusum: HashMap<(usize, usize, usize, String), CusumState>,
+    /// The last local day (service time zone) whose CUSUM step is done.
+    last_day: Option<NaiveDate>,
 }
+
+/// Days of history the CUSUM runs over quietly at start, so a build-up
+/// under way is not forgotten by a restart.
+const CUSUM_WARM_DAYS: i64 = 14;
 
 /// How the engine runs.
 #[derive(Debug, Clone, Copy, Default)]
@@ -138,6 +150,9 @@ impl Engine {
             last_prune: None,
             quiet: false,
             options,
+            species_override: None,
+            cusum: HashMap::new(),
+            last_day: None,
             cfg,
         }
     }
@@ -484,10 +499,15 @@ impl Engine {
         r
     }
 
-    /// Time-driven checks: silence episodes.
+    /// Time-driven checks: the CUSUM step of every local day that has
+    /// ended, and silence episodes.
     pub fn tick(&mut self, now: DateTime<Utc>) -> Vec<Output> {
         let mut out = Vec::new();
-        if self.quiet || self.options.assume_operating {
+        if self.quiet {
+            return out;
+        }
+        self.close_days(now, &mut out);
+        if self.options.assume_operating {
             return out;
         }
         for (sub, wi, site) in self.rules.silence_watches().to_vec() {
@@ -526,6 +546,103 @@ impl Engine {
         out
     }
 
+    /// Runs the build-up CUSUM (METHODS 4) for each local day that ended
+    /// since the last call. The first call runs the last
+    /// [`CUSUM_WARM_DAYS`] quietly.
+    fn close_days(&mut self, now: DateTime<Utc>, out: &mut Vec<Output>) {
+        if self.rules.buildup_watches().is_empty() {
+            return;
+        }
+        let tz = self.cfg.service.timezone;
+        let today = local_date_of(now, tz);
+        let (mut day, warm_until) = match self.last_day {
+            None => (today - Duration::days(CUSUM_WARM_DAYS), Some(today)),
+            Some(d) => (d + Duration::days(1), None),
+        };
+        while day < today {
+            let quiet = warm_until.is_some();
+            self.cusum_day(day, quiet, now, out);
+            self.last_day = Some(day);
+            day += Duration::days(1);
+        }
+    }
+
+    fn cusum_day(
+        &mut self,
+        day: NaiveDate,
+        quiet: bool,
+        now: DateTime<Utc>,
+        out: &mut Vec<Output>,
+    ) {
+        let (from, to) = local_day_bounds(day, self.cfg.service.timezone);
+        let b = self.cfg.baseline.clone();
+        let Ok(window) = baseline_window(from, to, b.window_days, b.guard_days) else {
+            return;
+        };
+        for (sub, wi, site) in self.rules.buildup_watches().to_vec() {
+            let w = self.cfg.subscribers[sub].watches[wi].clone();
+            let dep = self.rules.site(site).deployment_id.clone();
+            for species in &w.species {
+                let x = self.ledger.count_starting_in(&dep, species, from, to);
+                let e = self.uptime[site].camera_nights(from, to, to);
+                let n = self
+                    .ledger
+                    .count_starting_in(&dep, species, window.from, window.to);
+                let t = self.uptime[site].camera_nights(window.from, window.to, to);
+                let regional = self.regional_rate(species, window.from, window.to, to);
+                let Ok(posterior) =
+                    GammaRate::prior(regional, b.prior_nights).and_then(|p| p.update(n, t))
+                else {
+                    continue;
+                };
+                let Ok(params) = CusumParams::new(
+                    posterior.mean(),
+                    w.ratio,
+                    cusum::DEFAULT_H,
+                    cusum::rate_floor(b.prior_nights, t),
+                ) else {
+                    continue;
+                };
+                let state = self
+                    .cusum
+                    .entry((sub, wi, site, species.clone()))
+                    .or_default();
+                let Ok(step) = state.step(&params, x, e) else {
+                    continue;
+                };
+                if step.signal && !quiet {
+                    let ev = Evidence {
+                        count: Some(x as u32),
+                        exposure_nights: Some(e),
+                        window_hours: Some((to - from).num_minutes() as f64 / 60.0),
+                        gamma_shape: Some(posterior.shape),
+                        gamma_rate: Some(posterior.rate),
+                        expected: Some(params.r0() * e),
+                        ratio: Some(w.ratio),
+                        baseline_from: Some(window.from),
+                        baseline_to: Some(window.to),
+                        ..Default::default()
+                    };
+                    self.species_override = Some(species.clone());
+                    let event_id = format!("build-up:{dep}:{}:{day}", species.replace(' ', "_"));
+                    self.decide(
+                        sub,
+                        wi,
+                        site,
+                        crate::notify::Trigger::BuildUp,
+                        None,
+                        event_id,
+                        from,
+                        ev,
+                        now,
+                        out,
+                    );
+                    self.species_override = None;
+                }
+            }
+        }
+    }
+
     #[allow(clippy::too_many_arguments)]
     fn decide(
         &mut self,
@@ -543,7 +660,9 @@ impl Engine {
         let s = &self.cfg.subscribers[sub];
         let w = &s.watches[wi];
         let site_info = self.rules.site(site);
-        let species = event.map(|e| e.scientific_name.clone());
+        let species = event
+            .map(|e| e.scientific_name.clone())
+            .or_else(|| self.species_override.take());
         evidence.rule = Some(format!("{}/{}", s.id, w.name));
         evidence.clock_time = Some(now);
         let key = FoldKey {

@@ -18,6 +18,8 @@ pub struct RuleBook {
     covered: Vec<Vec<usize>>,
     /// (subscriber, watch, site) for every silence watch and covered site.
     silence: Vec<(usize, usize, usize)>,
+    /// (subscriber, watch, site) for every build-up watch and covered site.
+    buildup: Vec<(usize, usize, usize)>,
     /// Per (subscriber, watch): timezone, hours and season, copied for speed.
     windows: HashMap<
         (usize, usize),
@@ -50,6 +52,7 @@ impl RuleBook {
         let mut covering = vec![Vec::new(); sites.len()];
         let mut covered = Vec::with_capacity(cfg.subscribers.len());
         let mut silence = Vec::new();
+        let mut buildup = Vec::new();
         let mut windows = HashMap::new();
         for (si, sub) in cfg.subscribers.iter().enumerate() {
             let cov = index.coverage_of(&sub.area);
@@ -61,6 +64,9 @@ impl RuleBook {
                 if w.trigger == TriggerKind::Silence {
                     silence.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
                 }
+                if w.trigger == TriggerKind::BuildUp {
+                    buildup.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
+                }
             }
             covered.push(cov.into_iter().map(|(s, _)| s).collect());
         }
@@ -71,6 +77,7 @@ impl RuleBook {
             covering,
             covered,
             silence,
+            buildup,
             windows,
         }
     }
@@ -99,6 +106,10 @@ impl RuleBook {
 
     pub fn silence_watches(&self) -> &[(usize, usize, usize)] {
         &self.silence
+    }
+
+    pub fn buildup_watches(&self) -> &[(usize, usize, usize)] {
+        &self.buildup
     }
 
     /// The watch's hours and season hold at `at` (the subscriber's time

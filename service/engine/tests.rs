@@ -267,3 +267,74 @@ fn quiet_hours_defer_non_urgent_notices() {
     let n = e.apply(&obs("q1", "KB-06", "Vulpes vulpes", late), late);
     assert_eq!(notices(&n)[0].0.disposition, Disposition::Deferred);
 }
+
+#[test]
+fn a_slow_build_up_signals_once_the_cusum_passes_h() {
+    let sub = "[[subscriber]]\nid = \"coord\"\nemail = \"c@kellerby.example\"\narea = { sites = [\"KB-07\"] }\n[[subscriber.watch]]\nname = \"dogs creeping up\"\ntrigger = \"build-up\"\nspecies = [\"Canis familiaris\"]\nratio = 2.0\ncooldown_minutes = 0\nchannels = [\"email\"]\n";
+    let mut e = Engine::new(config(sub));
+    let start = t("2026-06-01T00:00:00+10:00");
+    let mut msgs = Vec::new();
+    for h in 0..(40 * 24) {
+        let at = start + Duration::hours(h);
+        msgs.push(hb("KB-06", at));
+        msgs.push(hb("KB-07", at));
+        if h % 240 == 100 {
+            msgs.push(obs(
+                &format!("h{h}"),
+                "KB-07",
+                "Canis familiaris",
+                at + Duration::minutes(5),
+            ));
+        }
+    }
+    e.warm(msgs.iter());
+    // First tick: the last 14 days run quietly; nothing is notified.
+    let mut now = start + Duration::days(40) + Duration::minutes(5);
+    assert!(notices(&e.tick(now)).is_empty());
+    // Then one dog a day at noon. With r0 near 0.1 per night and r1 = 2 r0,
+    // k = e (r1 - r0) / ln 2 is about 0.15 a day, so S climbs by about 0.85
+    // a day and crosses h = 5 after six days at the earliest (Lucas 1985
+    // recursion, METHODS 4).
+    let mut fired = Vec::new();
+    for d in 0..10 {
+        let noon = now + Duration::hours(12);
+        for k in 0..24 {
+            let _ = e.apply(
+                &hb("KB-07", now + Duration::hours(k)),
+                now + Duration::hours(k),
+            );
+        }
+        let _ = e.apply(
+            &obs(&format!("u{d}"), "KB-07", "Canis familiaris", noon),
+            noon,
+        );
+        now += Duration::days(1);
+        for (n, _) in notices(&e.tick(now)) {
+            fired.push((d, n.clone()));
+        }
+    }
+    assert!(
+        !fired.is_empty(),
+        "a daily visit at a site with one every ten days is a build-up"
+    );
+    let (day, n) = &fired[0];
+    assert!(
+        (5..=9).contains(day),
+        "fired after {} daily visits",
+        day + 1
+    );
+    assert_eq!(n.trigger, crate::notify::Trigger::BuildUp);
+    assert_eq!(n.scientific_name.as_deref(), Some("Canis familiaris"));
+    let ev = &n.evidence;
+    assert_eq!(ev.ratio, Some(2.0));
+    assert_eq!(ev.count, Some(1));
+    let mean = ev.gamma_shape.unwrap() / ev.gamma_rate.unwrap();
+    assert!(
+        (ev.expected.unwrap() - mean * ev.exposure_nights.unwrap()).abs() < 1e-9,
+        "expected = r0 e with r0 the posterior mean"
+    );
+    assert!(
+        fired.len() <= 2,
+        "the statistic resets after a signal: {fired:?}"
+    );
+}
