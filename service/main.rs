@@ -89,7 +89,8 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
                 }
                 (None, None) => anyhow::bail!("give -c FILE or --state-dir DIR"),
             };
-            let s = outrider::status::read(&dir, cfg.as_ref(), SystemClock.now())?;
+            let now = outrider::status::effective_now(&dir, SystemClock.now());
+            let s = outrider::status::read(&dir, cfg.as_ref(), now)?;
             if json {
                 println!("{}", serde_json::to_string_pretty(&s)?);
             } else {

@@ -7,6 +7,21 @@ use crate::store::{Backend, StatusCounts};
 use chrono::{DateTime, Duration, Utc};
 use std::path::Path;
 
+/// Written by `outrider demo` into its state directory: the simulated time
+/// it had reached when it stopped (RFC 3339), which `status` then uses as
+/// "now" for that directory.
+pub const DEMO_CLOCK_FILE: &str = "demo-clock";
+
+/// The time to judge silence by: the demo's simulated time for a demo's
+/// state directory, else `now`.
+pub fn effective_now(state_dir: &Path, now: DateTime<Utc>) -> DateTime<Utc> {
+    std::fs::read_to_string(state_dir.join(DEMO_CLOCK_FILE))
+        .ok()
+        .and_then(|t| DateTime::parse_from_rfc3339(t.trim()).ok())
+        .map(|t| t.with_timezone(&Utc))
+        .unwrap_or(now)
+}
+
 /// Counts from the store in `state_dir`; with `cfg`, silent deployments are
 /// worked out against its sites and silence limit at `now`.
 pub fn read(

@@ -225,6 +225,10 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
         cfg_path.display()
     );
     println!("  broker:  mqtt://127.0.0.1:{port} (embedded; topics outrider/<deploymentID>/observation|heartbeat|correction)");
+    println!(
+        "  mail:    {} (one .eml file per email; open with any mail program)",
+        dir.join("mail").display()
+    );
     let duration = opts.duration_seconds;
     let shutdown = async move {
         match duration {
@@ -238,11 +242,18 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
         }
     };
     let feed_clock = clock.clone();
+    let end_clock = clock.clone();
     crate::app::run(cfg, clock, shutdown, move |_running| {
         tokio::spawn(publish_feed(port, prefix, start, feed_clock));
     })
     .await?;
-    let status = crate::status::read(&dir, crate::config::load(&cfg_path).ok().as_ref(), real_now)?;
+    // Leave the simulated time reached, so `status` judges silence by it.
+    let sim_end = end_clock.now();
+    let _ = std::fs::write(
+        dir.join(crate::status::DEMO_CLOCK_FILE),
+        sim_end.to_rfc3339(),
+    );
+    let status = crate::status::read(&dir, crate::config::load(&cfg_path).ok().as_ref(), sim_end)?;
     println!("{}", crate::status::render_text(&status));
     Ok(())
 }
