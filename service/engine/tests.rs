@@ -149,12 +149,9 @@ fn first_seen_needs_a_quiet_span_that_was_watched() {
     );
 }
 
-#[test]
-fn a_spike_over_a_quiet_history_fires_with_its_evidence() {
-    let sub = "[[subscriber]]\nid = \"bell\"\nemail = \"b@bellbird.example\"\narea = { sites = [\"KB-07\"] }\n[[subscriber.watch]]\nname = \"dogs up\"\ntrigger = \"spike\"\nspecies = [\"Canis familiaris\"]\nwindow_hours = 24\nratio = 3.0\nmin_count = 3\ncooldown_minutes = 0\nchannels = [\"email\"]\n";
-    let mut e = Engine::new(config(sub));
-    let start = t("2026-06-01T00:00:00+10:00");
-    // Hourly heartbeats at KB-06 and KB-07 for 40 days; a dog at KB-07 every 10 days.
+/// 40 days from `start`: hourly heartbeats at KB-06 and KB-07, and a wild
+/// dog at KB-07 every ten days (hours 100, 340, 580, 820).
+fn quiet_history(start: DateTime<Utc>) -> Vec<Message> {
     let mut msgs = Vec::new();
     for h in 0..(40 * 24) {
         let at = start + Duration::hours(h);
@@ -169,6 +166,16 @@ fn a_spike_over_a_quiet_history_fires_with_its_evidence() {
             ));
         }
     }
+    msgs
+}
+
+#[test]
+fn a_spike_over_a_quiet_history_fires_with_its_evidence() {
+    let sub = "[[subscriber]]\nid = \"bell\"\nemail = \"b@bellbird.example\"\narea = { sites = [\"KB-07\"] }\n[[subscriber.watch]]\nname = \"dogs up\"\ntrigger = \"spike\"\nspecies = [\"Canis familiaris\"]\nwindow_hours = 24\nratio = 3.0\nmin_count = 3\ncooldown_minutes = 0\nchannels = [\"email\"]\n";
+    let mut e = Engine::new(config(sub));
+    let start = t("2026-06-01T00:00:00+10:00");
+    // Hourly heartbeats at KB-06 and KB-07 for 40 days; a dog at KB-07 every 10 days.
+    let msgs = quiet_history(start);
     e.warm(msgs.iter());
     // Then five dog visits an hour apart.
     let burst = start + Duration::days(40) + Duration::hours(1);
@@ -273,20 +280,7 @@ fn a_slow_build_up_signals_once_the_cusum_passes_h() {
     let sub = "[[subscriber]]\nid = \"coord\"\nemail = \"c@kellerby.example\"\narea = { sites = [\"KB-07\"] }\n[[subscriber.watch]]\nname = \"dogs creeping up\"\ntrigger = \"build-up\"\nspecies = [\"Canis familiaris\"]\nratio = 2.0\ncooldown_minutes = 0\nchannels = [\"email\"]\n";
     let mut e = Engine::new(config(sub));
     let start = t("2026-06-01T00:00:00+10:00");
-    let mut msgs = Vec::new();
-    for h in 0..(40 * 24) {
-        let at = start + Duration::hours(h);
-        msgs.push(hb("KB-06", at));
-        msgs.push(hb("KB-07", at));
-        if h % 240 == 100 {
-            msgs.push(obs(
-                &format!("h{h}"),
-                "KB-07",
-                "Canis familiaris",
-                at + Duration::minutes(5),
-            ));
-        }
-    }
+    let msgs = quiet_history(start);
     e.warm(msgs.iter());
     // First tick: the last 14 days run quietly; nothing is notified.
     let mut now = start + Duration::days(40) + Duration::minutes(5);
