@@ -10,4 +10,5 @@ mod delivery;
 mod deploy;
 mod ingest;
 mod notices;
+mod replay;
 mod util;

@@ -445,7 +445,7 @@ impl Engine {
         let from = to - Duration::hours(i64::from(hours));
         let dep = self.rules.site(site).deployment_id.clone();
         let count = self.ledger.count_starting_in(&dep, species, from, to);
-        let exposure = self.uptime[site].camera_nights(from, to, at);
+        let exposure = self.uptime[site].camera_nights(from, to, to);
         let b = self.cfg.baseline.clone();
         let window = baseline_window(from, to, b.window_days, b.guard_days).ok()?;
         let history_events = self
