@@ -461,7 +461,7 @@ fn smtp_connection_refused_is_retriable() {
 
 /// A test CA and a server certificate for 127.0.0.1 signed by it, as PEM
 /// files in `dir`: (ca.pem, cert.pem, key.pem).
-fn test_certificates(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
+pub fn test_certificates(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
     use rcgen::{
         BasicConstraints, CertificateParams, DnType, ExtendedKeyUsagePurpose, IsCa, KeyPair,
         KeyUsagePurpose, SanType,

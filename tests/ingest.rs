@@ -344,3 +344,70 @@ fn backlog_larger_than_every_queue_drains() {
     let (exit, _) = daemon.stop();
     assert!(exit.success());
 }
+
+/// TLS to the broker (mqtts with a CA generated here by rcgen) and a
+/// password, against a real Mosquitto that speaks only TLS: the right CA
+/// connects and ingests; another CA is refused; a wrong password is refused.
+#[test]
+fn mqtts_with_a_test_ca_and_a_password() {
+    let dir = tempfile::tempdir().unwrap();
+    let (ca, cert, key) = crate::delivery::test_certificates(&dir.path().join("pki"));
+    let mosquitto = Mosquitto::start_tls(dir.path(), &cert, &key, "outrider", "kellerby-test-pw");
+    let tls = |sub: &str, ca: &std::path::Path| {
+        let d = dir.path().join(sub);
+        let cfg = write_config(&d, mosquitto.port, false, "");
+        let text = std::fs::read_to_string(&cfg).unwrap().replace(
+            &format!("url = \"mqtt://127.0.0.1:{}\"", mosquitto.port),
+            &format!("url = \"mqtts://127.0.0.1:{}\"\nusername = \"outrider\"\npassword_env = \"OUTRIDER_TEST_MQTT_PW\"\nca_file = \"{}\"", mosquitto.port, ca.display()),
+        );
+        std::fs::write(&cfg, text).unwrap();
+        cfg
+    };
+    // The right CA and password: connects (the harness waits for it).
+    let good = tls("good", &ca);
+    let mut daemon =
+        Daemon::start_with_env(&good, &[("OUTRIDER_TEST_MQTT_PW", "kellerby-test-pw")]);
+    assert!(daemon.log_text().contains("Connected to the MQTT broker"));
+    let (exit, _) = daemon.stop();
+    assert!(exit.success());
+
+    // A certificate from another CA: the TLS handshake is refused.
+    let (other_ca, _, _) = crate::delivery::test_certificates(&dir.path().join("other-pki"));
+    let wrong_ca = tls("wrong-ca", &other_ca);
+    let mut d =
+        Daemon::start_unconnected(&wrong_ca, &[("OUTRIDER_TEST_MQTT_PW", "kellerby-test-pw")]);
+    let log = wait_for(
+        std::time::Duration::from_secs(15),
+        "a refused TLS handshake in the log",
+        || {
+            let t = d.log_text();
+            t.contains("MQTT connection lost or refused").then_some(t)
+        },
+    );
+    assert!(!log.contains("Connected to the MQTT broker"), "{log}");
+    assert!(
+        log.to_lowercase().contains("certificate") || log.contains("Tls") || log.contains("tls"),
+        "{log}"
+    );
+    d.kill9();
+
+    // The right CA but a wrong password: the broker refuses the login, and
+    // the password appears nowhere in the log.
+    let wrong_pw = tls("wrong-pw", &ca);
+    let mut d =
+        Daemon::start_unconnected(&wrong_pw, &[("OUTRIDER_TEST_MQTT_PW", "not-the-password")]);
+    let log = wait_for(
+        std::time::Duration::from_secs(15),
+        "a refused login in the log",
+        || {
+            let t = d.log_text();
+            t.contains("MQTT connection lost or refused").then_some(t)
+        },
+    );
+    assert!(!log.contains("Connected to the MQTT broker"), "{log}");
+    assert!(
+        !log.contains("not-the-password") && !log.contains("kellerby-test-pw"),
+        "a secret reached the log"
+    );
+    d.kill9();
+}

@@ -71,6 +71,37 @@ pub struct Mosquitto {
 }
 
 impl Mosquitto {
+    /// A broker speaking only TLS (the given certificate and key), with one
+    /// user and password, as deploy/mosquitto.conf sets up production.
+    pub fn start_tls(dir: &Path, cert: &Path, key: &Path, user: &str, password: &str) -> Self {
+        let dir = dir.join("mosquitto-tls");
+        std::fs::create_dir_all(&dir).unwrap();
+        let pw = dir.join("passwd");
+        let ok = Command::new("mosquitto_passwd")
+            .args(["-b", "-c"])
+            .arg(&pw)
+            .args([user, password])
+            .status()
+            .expect("mosquitto_passwd (Debian package mosquitto)");
+        assert!(ok.success());
+        let port = free_port();
+        let conf = format!(
+            "listener {port} 127.0.0.1\nuser root\ncertfile {}\nkeyfile {}\nallow_anonymous false\npassword_file {}\npersistence false\nlog_dest file {}/mosquitto.log\n",
+            cert.display(),
+            key.display(),
+            pw.display(),
+            dir.display()
+        );
+        std::fs::write(dir.join("mosquitto.conf"), conf).unwrap();
+        let mut m = Mosquitto {
+            port,
+            dir,
+            child: None,
+        };
+        m.spawn();
+        m
+    }
+
     pub fn start(dir: &Path) -> Self {
         let dir = dir.join("mosquitto");
         std::fs::create_dir_all(&dir).unwrap();
@@ -166,21 +197,42 @@ pub struct Daemon {
     pub log: PathBuf,
     child: Option<Child>,
     starts: usize,
+    env: Vec<(String, String)>,
 }
 
 impl Daemon {
     pub fn start(config: &Path) -> Self {
-        let mut d = Daemon {
-            config: config.to_path_buf(),
-            log: config.with_extension("log"),
-            child: None,
-            starts: 0,
-        };
+        Self::start_with_env(config, &[])
+    }
+
+    /// Starts `outrider run` with extra environment and waits for it to connect.
+    pub fn start_with_env(config: &Path, env: &[(&str, &str)]) -> Self {
+        let mut d = Self::new(config, env);
         d.spawn();
         d
     }
 
-    fn spawn(&mut self) {
+    /// Starts `outrider run` without waiting for it to connect.
+    pub fn start_unconnected(config: &Path, env: &[(&str, &str)]) -> Self {
+        let mut d = Self::new(config, env);
+        d.launch();
+        d
+    }
+
+    fn new(config: &Path, env: &[(&str, &str)]) -> Self {
+        Daemon {
+            config: config.to_path_buf(),
+            log: config.with_extension("log"),
+            child: None,
+            starts: 0,
+            env: env
+                .iter()
+                .map(|(k, v)| (k.to_string(), v.to_string()))
+                .collect(),
+        }
+    }
+
+    fn launch(&mut self) {
         let log = std::fs::OpenOptions::new()
             .create(true)
             .append(true)
@@ -190,12 +242,17 @@ impl Daemon {
             .args(["--log-format", "json", "run", "-c"])
             .arg(&self.config)
             .env("RUST_LOG", "info")
+            .envs(self.env.iter().map(|(k, v)| (k.as_str(), v.as_str())))
             .stdout(Stdio::null())
             .stderr(log)
             .spawn()
             .expect("start outrider");
         self.child = Some(child);
         self.starts += 1;
+    }
+
+    fn spawn(&mut self) {
+        self.launch();
         let want = self.starts;
         let log = self.log.clone();
         wait_for(
