@@ -174,7 +174,8 @@ pub enum RejectReason {
     DeploymentMismatch,
     /// The topic is not one outrider reads.
     UnknownTopic,
-    /// A correction for an observation outrider has never stored.
+    /// Replay: a correction that cannot be placed in time. (The daemon keeps
+    /// a correction of an observation not seen yet and applies it later.)
     UnknownObservation,
 }
 

@@ -86,6 +86,8 @@ pub struct Engine {
     /// While warming, nothing is notified (history is being loaded).
     quiet: bool,
     options: Options,
+    /// Corrections whose observation has not arrived yet, with arrival time.
+    pending: HashMap<String, Vec<(DateTime<Utc>, crate::model::Correction)>>,
     /// Species of a notice that has no single event (build-up), for `decide`.
     species_override: Option<String>,
     /// CUSUM statistic per (subscriber, watch, site, species).
@@ -151,6 +153,7 @@ impl Engine {
             quiet: false,
             options,
             species_override: None,
+            pending: HashMap::new(),
             cusum: HashMap::new(),
             last_day: None,
             cfg,
@@ -218,6 +221,14 @@ impl Engine {
             }
             Message::Correction(c) => {
                 let change = correct(&mut self.ledger, c);
+                if change == Change::Unknown {
+                    // Its observation has not arrived yet (MQTT orders
+                    // messages per topic only): apply it when it does.
+                    self.pending
+                        .entry(c.observation_id.clone())
+                        .or_default()
+                        .push((now, c.clone()));
+                }
                 let removed = self.store_change(&change, &mut out);
                 for id in removed {
                     self.follow_up(&id, &c.observation_id, now, &mut out);
@@ -293,6 +304,15 @@ impl Engine {
             _ => return,
         };
         self.store_change(&change, out);
+        if let Some(corrections) = self.pending.remove(&o.observation_id) {
+            // A person already looked at this one: apply the corrections and
+            // do not notify on the observation as first labelled.
+            for (_, c) in corrections {
+                let change = correct(&mut self.ledger, &c);
+                self.store_change(&change, out);
+            }
+            return;
+        }
         let meta = self.meta.entry(id.clone()).or_default();
         meta.best_probability = meta.best_probability.max(probability(o));
         if meta.vernacular_name.is_none() {
@@ -839,6 +859,8 @@ impl Engine {
         self.meta.retain(|id, _| id.start >= cutoff);
         self.decided.retain(|(_, _, id)| id.start >= cutoff);
         self.sent_for.retain(|id, _| id.start >= cutoff);
+        self.pending
+            .retain(|_, v| v.iter().any(|(at, _)| *at >= cutoff));
         self.policy.prune(now);
     }
 }

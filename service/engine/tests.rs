@@ -332,3 +332,28 @@ fn a_slow_build_up_signals_once_the_cusum_passes_h() {
         "the statistic resets after a signal: {fired:?}"
     );
 }
+
+#[test]
+fn a_correction_that_overtakes_its_observation_waits_for_it() {
+    // MQTT keeps order per topic only: a retraction on .../correction can
+    // arrive before the observation on .../observation.
+    let mut e = Engine::new(config(STONECROFT));
+    let t0 = t("2026-07-14T02:00:00+10:00");
+    let fix = Message::Correction(Correction {
+        observation_id: "late1".into(),
+        deployment_id: "KB-06".into(),
+        scientific_name: None,
+        count: None,
+        observation_type: Some(ObservationType::Blank),
+    });
+    assert!(e.apply(&fix, t0).is_empty());
+    let out = e.apply(
+        &obs("late1", "KB-06", "Vulpes vulpes", t0),
+        t0 + Duration::seconds(5),
+    );
+    assert!(
+        notices(&out).is_empty(),
+        "a retracted observation is not notified"
+    );
+    assert_eq!(e.events().count(), 0, "and leaves no event");
+}

@@ -103,6 +103,19 @@ impl Sqlite {
     }
 }
 
+/// A correction's content, so that a redelivered one is stored once.
+fn correction_key(c: &crate::model::Correction) -> String {
+    format!(
+        "{}\u{1f}{}\u{1f}{}\u{1f}{}",
+        c.observation_id,
+        c.scientific_name.as_deref().unwrap_or(""),
+        c.count.map(|v| v.to_string()).unwrap_or_default(),
+        c.observation_type
+            .map(ObservationType::as_str)
+            .unwrap_or("")
+    )
+}
+
 fn bump(tx: &rusqlite::Transaction<'_>, name: &str, by: i64) -> rusqlite::Result<()> {
     tx.prepare_cached("INSERT INTO counters (name, value) VALUES (?1, ?2) ON CONFLICT (name) DO UPDATE SET value = value + ?2")?
         .execute(params![name, by])?;
@@ -242,7 +255,8 @@ pub fn load_history(c: &Connection, since: DateTime<Utc>) -> Result<Vec<Message>
     }
     let mut stmt = c.prepare_cached(
         "SELECT c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type FROM corrections c
-         JOIN observations o ON o.observation_id = c.observation_id WHERE o.event_start >= ?1 ORDER BY c.id",
+         LEFT JOIN observations o ON o.observation_id = c.observation_id
+         WHERE o.event_start >= ?1 OR (o.observation_id IS NULL AND c.received_at >= ?1) ORDER BY c.id",
     )?;
     let rows = stmt.query_map(params![ms(since)], |r| {
         Ok(Correction {
@@ -341,17 +355,11 @@ impl Backend for Sqlite {
                         )?
                         .query_row(params![c.observation_id], |r| r.get(0))
                         .optional()?;
+                    // A correction of an observation not seen yet is kept
+                    // and applies when the observation arrives.
                     match known {
-                        Some(dep) if dep == c.deployment_id => {
-                            let key = format!(
-                                "{}\u{1f}{}\u{1f}{}\u{1f}{}",
-                                c.observation_id,
-                                c.scientific_name.as_deref().unwrap_or(""),
-                                c.count.map(|v| v.to_string()).unwrap_or_default(),
-                                c.observation_type
-                                    .map(ObservationType::as_str)
-                                    .unwrap_or("")
-                            );
+                        None => {
+                            let key = correction_key(c);
                             let n = tx
                                 .prepare_cached("INSERT INTO corrections (observation_id, deployment_id, scientific_name, count, observation_type, received_at, content_key) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (content_key) DO NOTHING")?
                                 .execute(params![c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type.map(ObservationType::as_str), ms(*received_at), key])?;
@@ -362,24 +370,27 @@ impl Backend for Sqlite {
                                 Outcome::Duplicate
                             }
                         }
-                        other => {
-                            let r = match other {
-                                None => Rejection::new(
-                                    RejectReason::UnknownObservation,
-                                    format!(
-                                        "no stored observation has observationID `{}`",
-                                        crate::ingest::decode::printable(&c.observation_id)
-                                    ),
+                        Some(dep) if dep == c.deployment_id => {
+                            let key = correction_key(c);
+                            let n = tx
+                                .prepare_cached("INSERT INTO corrections (observation_id, deployment_id, scientific_name, count, observation_type, received_at, content_key) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (content_key) DO NOTHING")?
+                                .execute(params![c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type.map(ObservationType::as_str), ms(*received_at), key])?;
+                            if n == 1 {
+                                Outcome::Stored
+                            } else {
+                                bump(&tx, "correction_duplicates", 1)?;
+                                Outcome::Duplicate
+                            }
+                        }
+                        Some(dep) => {
+                            let r = Rejection::new(
+                                RejectReason::DeploymentMismatch,
+                                format!(
+                                    "observation `{}` belongs to deployment `{dep}`, not `{}`",
+                                    crate::ingest::decode::printable(&c.observation_id),
+                                    c.deployment_id
                                 ),
-                                Some(dep) => Rejection::new(
-                                    RejectReason::DeploymentMismatch,
-                                    format!(
-                                        "observation `{}` belongs to deployment `{dep}`, not `{}`",
-                                        crate::ingest::decode::printable(&c.observation_id),
-                                        c.deployment_id
-                                    ),
-                                ),
-                            };
+                            );
                             let payload = serde_json::to_vec(c).unwrap_or_default();
                             let topic = format!("(correction)/{}", c.deployment_id);
                             store_rejection(

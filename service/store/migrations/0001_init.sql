@@ -34,7 +34,10 @@ CREATE TABLE heartbeats (
 
 CREATE TABLE corrections (
     id                 INTEGER PRIMARY KEY,
-    observation_id     TEXT NOT NULL REFERENCES observations (observation_id),
+    -- Not a foreign key: a correction may arrive before its observation
+    -- (MQTT orders messages per topic only); it then waits and applies
+    -- when the observation comes.
+    observation_id     TEXT NOT NULL,
     deployment_id      TEXT NOT NULL,
     scientific_name    TEXT,
     count              INTEGER,
