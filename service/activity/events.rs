@@ -565,6 +565,26 @@ impl EventLedger {
     }
 
     /// One event by id.
+    /// Like [`EventLedger::event`] without the observation ids (left
+    /// empty): what the engine stores and tests, at a cost that does not
+    /// grow with the event's length.
+    pub fn event_summary(&self, id: &EventId) -> Option<IndependentEvent> {
+        let gi = self
+            .index
+            .get(&id.deployment_id)?
+            .get(&id.scientific_name)?;
+        let g = &self.groups[*gi];
+        g.events.get(&id.start).map(|span| IndependentEvent {
+            deployment_id: g.deployment_id.clone(),
+            scientific_name: g.scientific_name.clone(),
+            start: id.start,
+            end: span.end,
+            count: span.count,
+            triggers: span.triggers,
+            observation_ids: Vec::new(),
+        })
+    }
+
     pub fn event(&self, id: &EventId) -> Option<IndependentEvent> {
         let gi = self
             .index

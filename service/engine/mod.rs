@@ -314,6 +314,7 @@ impl Engine {
             return;
         }
         let meta = self.meta.entry(id.clone()).or_default();
+        let raised = probability(o) > meta.best_probability;
         meta.best_probability = meta.best_probability.max(probability(o));
         if meta.vernacular_name.is_none() {
             meta.vernacular_name.clone_from(&o.vernacular_name);
@@ -324,10 +325,16 @@ impl Engine {
         if self.quiet {
             return;
         }
+        // A trigger that joins an event without moving its start or raising
+        // its best probability changes nothing a watch looks at (the spike
+        // and first-seen tests count event starts): skip the watches.
+        if matches!(&change, Change::Extended { old, new } if old == new) && !raised {
+            return;
+        }
         let Some(site) = self.rules.site_index(&o.deployment_id) else {
             return;
         };
-        let Some(event) = self.ledger.event(&id) else {
+        let Some(event) = self.ledger.event_summary(&id) else {
             return;
         };
         let best = self
@@ -751,7 +758,7 @@ impl Engine {
     fn store_change(&mut self, change: &Change, out: &mut Vec<Output>) -> Vec<EventId> {
         let mut removed = Vec::new();
         let upsert = |this: &mut Self, id: &EventId, out: &mut Vec<Output>| {
-            if let Some(e) = this.ledger.event(id) {
+            if let Some(e) = this.ledger.event_summary(id) {
                 out.push(Output::EventUpsert(e));
             }
         };
