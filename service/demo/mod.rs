@@ -199,16 +199,6 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
         history_from - Duration::days(30),
     )?;
     let cfg = crate::config::load(&cfg_path).map_err(|e| anyhow::anyhow!("{e}"))?;
-    let prefix_for_history = cfg.mqtt.topic_prefix.clone();
-    let history_cfg = cfg.clone();
-    let loaded = tokio::task::spawn_blocking(move || {
-        preload(&history_cfg, &prefix_for_history, history_from, start)
-    })
-    .await??;
-    println!(
-        "  history: {loaded} messages of {} days stored as if received live",
-        opts.history_days
-    );
     let clock: Arc<dyn Clock> = Arc::new(ScaledClock::new(start, opts.speed));
     let prefix = cfg.mqtt.topic_prefix.clone();
     let dir = opts.state_dir.clone();
@@ -228,6 +218,16 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
     println!(
         "  mail:    {} (one .eml file per email; open with any mail program)",
         dir.join("mail").display()
+    );
+    let prefix_for_history = cfg.mqtt.topic_prefix.clone();
+    let history_cfg = cfg.clone();
+    let loaded = tokio::task::spawn_blocking(move || {
+        preload(&history_cfg, &prefix_for_history, history_from, start)
+    })
+    .await??;
+    println!(
+        "  history: {loaded} messages of {} days stored as if received live",
+        opts.history_days
     );
     let duration = opts.duration_seconds;
     let shutdown = async move {
