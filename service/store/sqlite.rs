@@ -355,34 +355,12 @@ impl Backend for Sqlite {
                         )?
                         .query_row(params![c.observation_id], |r| r.get(0))
                         .optional()?;
-                    // A correction of an observation not seen yet is kept
-                    // and applies when the observation arrives.
+                    // A correction naming another deployment than its
+                    // observation's is refused; one of an observation not
+                    // seen yet is kept and applies when the observation
+                    // arrives.
                     match known {
-                        None => {
-                            let key = correction_key(c);
-                            let n = tx
-                                .prepare_cached("INSERT INTO corrections (observation_id, deployment_id, scientific_name, count, observation_type, received_at, content_key) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (content_key) DO NOTHING")?
-                                .execute(params![c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type.map(ObservationType::as_str), ms(*received_at), key])?;
-                            if n == 1 {
-                                Outcome::Stored
-                            } else {
-                                bump(&tx, "correction_duplicates", 1)?;
-                                Outcome::Duplicate
-                            }
-                        }
-                        Some(dep) if dep == c.deployment_id => {
-                            let key = correction_key(c);
-                            let n = tx
-                                .prepare_cached("INSERT INTO corrections (observation_id, deployment_id, scientific_name, count, observation_type, received_at, content_key) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (content_key) DO NOTHING")?
-                                .execute(params![c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type.map(ObservationType::as_str), ms(*received_at), key])?;
-                            if n == 1 {
-                                Outcome::Stored
-                            } else {
-                                bump(&tx, "correction_duplicates", 1)?;
-                                Outcome::Duplicate
-                            }
-                        }
-                        Some(dep) => {
+                        Some(dep) if dep != c.deployment_id => {
                             let r = Rejection::new(
                                 RejectReason::DeploymentMismatch,
                                 format!(
@@ -402,6 +380,18 @@ impl Backend for Sqlite {
                                 *received_at,
                             )?;
                             Outcome::Rejected(r)
+                        }
+                        _ => {
+                            let key = correction_key(c);
+                            let n = tx
+                                .prepare_cached("INSERT INTO corrections (observation_id, deployment_id, scientific_name, count, observation_type, received_at, content_key) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (content_key) DO NOTHING")?
+                                .execute(params![c.observation_id, c.deployment_id, c.scientific_name, c.count, c.observation_type.map(ObservationType::as_str), ms(*received_at), key])?;
+                            if n == 1 {
+                                Outcome::Stored
+                            } else {
+                                bump(&tx, "correction_duplicates", 1)?;
+                                Outcome::Duplicate
+                            }
                         }
                     }
                 }
