@@ -1183,7 +1183,9 @@ fn build_area(
     key: &str,
     files: &Files<'_>,
 ) -> Option<Area> {
-    let named_at = {
+    // Worked out only for an error: indexing the whole file per subscriber
+    // made loading many subscribers quadratic.
+    let named_at = |w: &Walker<'_, '_>| {
         let (line, col) = error::LineIndex::new(w.rep.src).locate(w.rep.src, at);
         format!("{}:{line}:{col}", w.rep.file.display())
     };
@@ -1230,9 +1232,13 @@ fn build_area(
                                 }
                                 _ => (0, 0),
                             };
-                            (l, c, Some(format!("{} (named at {named_at})", g.hint())))
+                            (
+                                l,
+                                c,
+                                Some(format!("{} (named at {})", g.hint(), named_at(w))),
+                            )
                         }
-                        _ => (0, 0, Some(format!("named at {named_at}"))),
+                        _ => (0, 0, Some(format!("named at {}", named_at(w)))),
                     };
                     w.rep.errors.push(ConfigError {
                         file: file.clone(),
