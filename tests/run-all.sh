@@ -64,4 +64,6 @@ echo "reference data regenerates identically"
 # 4. The Rust tests: unit, property, reference and integration.
 say "cargo test"
 export OUTRIDER_TEST_PYTHON="$PWD/$venv/bin/python"
-cargo test --all-targets "$@"
+# Benches are left out: they are measurements (docs/performance.md), and
+# in test mode their set-up alone takes minutes.
+cargo test --lib --bins --tests "$@"
