@@ -31,12 +31,12 @@ const TICK_EVERY: Duration = Duration::from_secs(1);
 /// The engine, warmed with the stored history it needs (its horizon), so a
 /// restart needs no full rebuild.
 async fn warm_engine(
-    cfg: &Config,
+    cfg: Arc<Config>,
     store: &Store,
     now: chrono::DateTime<chrono::Utc>,
 ) -> anyhow::Result<crate::engine::Engine> {
     let started = std::time::Instant::now();
-    let mut engine = crate::engine::Engine::new(Arc::new(cfg.clone()));
+    let mut engine = crate::engine::Engine::new(cfg);
     let since = now - engine.horizon();
     let history = store.with(move |b| b.history(since)).await??;
     let n = history.len();
@@ -82,7 +82,9 @@ where
     let (store, store_thread) =
         Store::start(Box::new(backend)).context("starting the store thread")?;
     let counters = Arc::new(Counters::new());
-    let engine = warm_engine(&cfg, &store, clock.now()).await?;
+    // One shared copy of the configuration for the engine and the outbox.
+    let shared = Arc::new(cfg.clone());
+    let engine = warm_engine(shared.clone(), &store, clock.now()).await?;
     let facts = Arc::new(DecodeFacts::from_config(&cfg));
 
     let opts = mqtt::options(
@@ -141,7 +143,7 @@ where
         let key = crate::outbox::link_key(&cfg.service.state_dir)?;
         tokio::spawn(crate::outbox::run(
             store.clone(),
-            Arc::new(cfg.clone()),
+            shared.clone(),
             channels,
             key,
             clock.clone(),

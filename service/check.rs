@@ -3,27 +3,11 @@
 //! with the distance a notice would show.
 
 use crate::config::{AreaSpec, Config};
-use crate::geo::{LatLon, SiteIndex};
 use std::fmt::Write;
 
-/// The sites of `cfg` as an R-tree index (sites with impossible
-/// coordinates were refused when the config loaded).
-pub fn site_index(cfg: &Config) -> SiteIndex {
-    let sites: Vec<(String, LatLon)> = cfg
-        .sites
-        .sites
-        .iter()
-        .filter_map(|s| {
-            LatLon::new(s.latitude, s.longitude)
-                .ok()
-                .map(|p| (s.deployment_id.clone(), p))
-        })
-        .collect();
-    SiteIndex::new(&sites)
-}
-
 pub fn summary(cfg: &Config) -> String {
-    let index = site_index(cfg);
+    // The same coverage the engine matches events with.
+    let rules = crate::engine::rules::RuleBook::compile(cfg);
     let mut o = String::new();
     let _ = writeln!(o, "configuration {} is valid", cfg.path.display());
     let _ = writeln!(
@@ -47,7 +31,7 @@ pub fn summary(cfg: &Config) -> String {
     for w in &cfg.warnings {
         let _ = writeln!(o, "warning       {w}");
     }
-    for s in &cfg.subscribers {
+    for (si, s) in cfg.subscribers.iter().enumerate() {
         let _ = writeln!(o);
         let _ = writeln!(
             o,
@@ -73,7 +57,7 @@ pub fn summary(cfg: &Config) -> String {
         };
         let _ = writeln!(o, "  area: {area}");
         // Index order is the sites file's order.
-        let cov = index.coverage_of(&s.area);
+        let cov = rules.sites_of(si);
         if cov.is_empty() {
             let _ = writeln!(
                 o,

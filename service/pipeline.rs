@@ -177,7 +177,7 @@ pub async fn run(
             tracing::error!("Store stopped; messages stay with the broker");
             break;
         };
-        counters.observe_commit(started.elapsed(), batch.len());
+        counters.observe_commit(started.elapsed());
         if notices > 0 {
             tracing::debug!(notices, "Notice decisions committed");
         }

@@ -71,7 +71,7 @@ impl Counters {
         }
     }
 
-    pub fn observe_commit(&self, took: Duration, _messages: usize) {
+    pub fn observe_commit(&self, took: Duration) {
         self.commits.fetch_add(1, Relaxed);
         self.commit_micros
             .fetch_add(took.as_micros() as u64, Relaxed);

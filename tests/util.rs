@@ -84,34 +84,34 @@ impl Mosquitto {
             .status()
             .expect("mosquitto_passwd (Debian package mosquitto)");
         assert!(ok.success());
-        let port = free_port();
-        let conf = format!(
-            "listener {port} 127.0.0.1\nuser root\ncertfile {}\nkeyfile {}\nallow_anonymous false\npassword_file {}\npersistence false\nlog_dest file {}/mosquitto.log\n",
+        let settings = format!(
+            "certfile {}\nkeyfile {}\nallow_anonymous false\npassword_file {}\npersistence false\n",
             cert.display(),
             key.display(),
-            pw.display(),
-            dir.display()
+            pw.display()
         );
-        std::fs::write(dir.join("mosquitto.conf"), conf).unwrap();
-        let mut m = Mosquitto {
-            port,
-            dir,
-            child: None,
-        };
-        m.spawn();
-        m
+        Self::launch(dir, &settings)
     }
 
     pub fn start(dir: &Path) -> Self {
         let dir = dir.join("mosquitto");
-        std::fs::create_dir_all(&dir).unwrap();
-        let port = free_port();
         // The settings that matter are those of deploy/mosquitto.conf:
         // persistence on, no queue limit (the default of 1000 silently drops
         // QoS 1 messages for an offline subscriber).
+        let settings = format!(
+            "allow_anonymous true\npersistence true\npersistence_location {}/\nmax_queued_messages 0\nmax_inflight_messages 100\nautosave_on_changes true\nautosave_interval 1\n",
+            dir.display()
+        );
+        Self::launch(dir, &settings)
+    }
+
+    /// Writes `dir/mosquitto.conf` (a loopback listener on a free port, the
+    /// log in `dir`, then `settings`) and starts the broker.
+    fn launch(dir: PathBuf, settings: &str) -> Self {
+        std::fs::create_dir_all(&dir).unwrap();
+        let port = free_port();
         let conf = format!(
-            "listener {port} 127.0.0.1\nuser root\nallow_anonymous true\npersistence true\npersistence_location {}/\nmax_queued_messages 0\nmax_inflight_messages 100\nautosave_on_changes true\nautosave_interval 1\nlog_dest file {}/mosquitto.log\n",
-            dir.display(),
+            "listener {port} 127.0.0.1\nuser root\nlog_dest file {}/mosquitto.log\n{settings}",
             dir.display()
         );
         std::fs::write(dir.join("mosquitto.conf"), conf).unwrap();

@@ -446,9 +446,9 @@ impl Engine {
         let sites = self.rules.sites_of(sub);
         let watched = sites
             .iter()
-            .any(|&s| self.rules.site(s).deployment_start <= from);
+            .any(|&(s, _)| self.rules.site(s).deployment_start <= from);
         watched
-            && sites.iter().all(|&s| {
+            && sites.iter().all(|&(s, _)| {
                 self.ledger.count_starting_in(
                     &self.rules.site(s).deployment_id,
                     species,

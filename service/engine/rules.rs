@@ -14,22 +14,22 @@ pub struct RuleBook {
     by_id: HashMap<String, usize>,
     /// Per site: (subscriber index, distance km) for every subscriber covering it.
     covering: Vec<Vec<(usize, f64)>>,
-    /// Per subscriber: the sites it covers.
-    covered: Vec<Vec<usize>>,
+    /// Per subscriber: (site index, distance km) for the sites it covers.
+    covered: Vec<Vec<(usize, f64)>>,
     /// (subscriber, watch, site) for every silence watch and covered site.
     silence: Vec<(usize, usize, usize)>,
     /// (subscriber, watch, site) for every build-up watch and covered site.
     buildup: Vec<(usize, usize, usize)>,
-    /// Per (subscriber, watch): timezone, hours and season, copied for speed.
-    windows: HashMap<
-        (usize, usize),
-        (
-            chrono_tz::Tz,
-            crate::calendar::Hours,
-            Option<crate::calendar::Season>,
-        ),
-    >,
+    /// `[subscriber][watch]`: time zone, hours and season (all `Copy`), so
+    /// the window test needs no `Config`.
+    windows: Vec<Vec<Window>>,
 }
+
+type Window = (
+    chrono_tz::Tz,
+    crate::calendar::Hours,
+    Option<crate::calendar::Season>,
+);
 
 impl RuleBook {
     pub fn compile(cfg: &Config) -> Self {
@@ -53,14 +53,19 @@ impl RuleBook {
         let mut covered = Vec::with_capacity(cfg.subscribers.len());
         let mut silence = Vec::new();
         let mut buildup = Vec::new();
-        let mut windows = HashMap::new();
+        let mut windows = Vec::with_capacity(cfg.subscribers.len());
         for (si, sub) in cfg.subscribers.iter().enumerate() {
+            windows.push(
+                sub.watches
+                    .iter()
+                    .map(|w| (sub.timezone, w.hours, w.season))
+                    .collect(),
+            );
             let cov = index.coverage_of(&sub.area);
             for (site, d) in &cov {
                 covering[*site].push((si, *d));
             }
             for (wi, w) in sub.watches.iter().enumerate() {
-                windows.insert((si, wi), (sub.timezone, w.hours, w.season));
                 if w.trigger == TriggerKind::Silence {
                     silence.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
                 }
@@ -68,7 +73,7 @@ impl RuleBook {
                     buildup.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
                 }
             }
-            covered.push(cov.into_iter().map(|(s, _)| s).collect());
+            covered.push(cov);
         }
         RuleBook {
             sites,
@@ -99,8 +104,9 @@ impl RuleBook {
         &self.covering[i]
     }
 
-    /// Sites subscriber `s` covers.
-    pub fn sites_of(&self, s: usize) -> &[usize] {
+    /// Sites subscriber `s` covers (in sites-file order), with the distance
+    /// a notice shows.
+    pub fn sites_of(&self, s: usize) -> &[(usize, f64)] {
         &self.covered[s]
     }
 
@@ -115,7 +121,7 @@ impl RuleBook {
     /// The watch's hours and season hold at `at` (the subscriber's time
     /// zone; dusk and dawn at the site).
     pub fn in_window(&self, sub: usize, watch: usize, site: usize, at: DateTime<Utc>) -> bool {
-        let Some((tz, hours, season)) = self.windows.get(&(sub, watch)) else {
+        let Some((tz, hours, season)) = self.windows.get(sub).and_then(|w| w.get(watch)) else {
             return false;
         };
         hours.contains(at, *tz, self.points[site])
