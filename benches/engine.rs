@@ -736,7 +736,7 @@ fn rule_book(c: &mut Criterion) {
     g.finish();
 }
 
-/// One file with `n` circle subscribers, as a big council would write it.
+/// One file with `n` circle subscribers, as a large regional operator might write it.
 fn many_subscribers_toml(n: usize) -> String {
     let mut rng = SmallRng::seed_from_u64(9);
     let half = (BIG_SIDE as f64 - 1.0) * BIG_SPACING_KM / 2.0;
