@@ -39,6 +39,8 @@ async fn warm_engine(
     let mut engine = crate::engine::Engine::new(cfg);
     let since = now - engine.horizon();
     let history = store.with(move |b| b.history(since)).await??;
+    let digests = store.with(|b| b.last_digests()).await??;
+    engine.schedule_digests(digests);
     let n = history.len();
     engine.warm(history.iter());
     tracing::info!(
@@ -148,6 +150,7 @@ where
             key,
             clock.clone(),
             OUTBOX_EVERY,
+            crate::outbox::Concurrency::default(),
             outbox_stop.clone(),
         ))
     };

@@ -72,6 +72,34 @@ pub enum Command {
     /// one JSON object per notice (stdout) and a per-subscriber summary
     /// (stderr). Nothing is sent or stored.
     Replay(ReplayArgs),
+    /// Preview one subscriber's daily digest from the store (safe while
+    /// the daemon runs; nothing is sent).
+    Digest {
+        /// The configuration file (TOML).
+        #[arg(short = 'c', long = "config", value_name = "FILE")]
+        config: PathBuf,
+        /// The subscriber's id.
+        #[arg(long, value_name = "ID")]
+        subscriber: String,
+        /// The digest's due instant (RFC 3339); default: the latest one at
+        /// or before now.
+        #[arg(long, value_name = "TIME")]
+        at: Option<String>,
+        /// Write to FILE: .eml the whole email, .html the HTML part, .json
+        /// the numbers, else the text; default: the text on stdout.
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+    },
+    /// Send one clearly marked test message now on each of a subscriber's
+    /// channels and report what each server said.
+    SendTest {
+        /// The configuration file (TOML).
+        #[arg(short = 'c', long = "config", value_name = "FILE")]
+        config: PathBuf,
+        /// The subscriber's id.
+        #[arg(long, value_name = "ID")]
+        subscriber: String,
+    },
     /// Copy the store to a file, safely while the daemon runs; check the
     /// copy and print its row counts.
     Backup {

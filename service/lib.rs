@@ -43,6 +43,7 @@ pub mod clock;
 pub mod config;
 pub mod deliver;
 pub mod demo;
+pub mod digest;
 pub mod engine;
 pub mod geo;
 pub mod ingest;
@@ -54,6 +55,7 @@ pub mod replay;
 pub mod status;
 pub mod store;
 pub mod telemetry;
+pub mod tools;
 
 /// Largest MQTT packet outrider reads off the wire. Larger than any payload
 /// limit so that an oversize message is rejected with a reason rather than

@@ -112,6 +112,50 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
                 started.elapsed().as_secs_f64()
             );
         }
+        Command::Digest {
+            config,
+            subscriber,
+            at,
+            out,
+        } => {
+            let cfg = load(&config)?;
+            let due = at
+                .map(|t| {
+                    chrono::DateTime::parse_from_rfc3339(&t)
+                        .map(|t| t.with_timezone(&chrono::Utc))
+                        .map_err(|e| anyhow::anyhow!("--at {t:?} is not an RFC 3339 time: {e}"))
+                })
+                .transpose()?;
+            let d = outrider::tools::build_digest(&cfg, &subscriber, due, SystemClock.now())?;
+            println!(
+                "{}",
+                outrider::tools::write_preview(&cfg, &d, out.as_deref())?
+            );
+        }
+        Command::SendTest { config, subscriber } => {
+            let cfg = load(&config)?;
+            let results = runtime()?.block_on(outrider::tools::send_test(
+                &cfg,
+                &subscriber,
+                SystemClock.now(),
+            ))?;
+            let mut failed = false;
+            for r in &results {
+                match &r.outcome {
+                    Ok(m) => println!("{:8} ok: {m}", r.channel),
+                    Err(e) => {
+                        failed = true;
+                        println!("{:8} FAILED: {e}", r.channel)
+                    }
+                }
+            }
+            if results.is_empty() {
+                println!("subscriber {subscriber} has no channel to test");
+            }
+            if failed {
+                return Ok(ExitCode::from(1));
+            }
+        }
         Command::Replay(a) => {
             let cfg = load(&a.config)?;
             return outrider::replay::run(&cfg, &a);

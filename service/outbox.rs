@@ -11,13 +11,15 @@
 
 use crate::clock::Clock;
 use crate::config::{Config, Subscriber};
-use crate::deliver::email::{message_id, EmailSender, OutgoingEmail};
+use crate::deliver::email::{message_id, EmailSender, InlineImage, OutgoingEmail};
 use crate::deliver::folder::FolderSender;
 use crate::deliver::webhook::{OutgoingWebhook, WebhookSender};
 use crate::deliver::DeliveryError;
+use crate::digest::render::{render_digest, DigestContext, CHART_CID};
+use crate::digest::Digest;
 use crate::notify::token::{sign_token, Purpose, TokenKey};
 use crate::notify::{render_email, EmailContext, Notice, RetrySchedule};
-use crate::store::sqlite::{DeliveryUpdate, DueDelivery};
+use crate::store::sqlite::{DeliveryUpdate, DueDelivery, DueDigest};
 use crate::store::Store;
 use chrono::{DateTime, Duration, Utc};
 use std::path::Path;
@@ -96,7 +98,61 @@ pub fn link_key(state_dir: &Path) -> anyhow::Result<TokenKey> {
     Ok(TokenKey::new(bytes)?)
 }
 
-/// Runs until `stop` is cancelled, checking for due deliveries every `every`.
+/// How many sends may be in flight at once per channel. A slow SMTP
+/// server then holds up only email; webhooks and MQTT go on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Concurrency {
+    pub email: usize,
+    pub webhook: usize,
+    pub mqtt: usize,
+}
+
+impl Default for Concurrency {
+    fn default() -> Self {
+        Concurrency {
+            email: 4,
+            webhook: 8,
+            mqtt: 16,
+        }
+    }
+}
+
+/// One thing to send: a notice on one channel, or a digest (email).
+#[derive(Debug, Clone)]
+enum Work {
+    Notice(Box<DueDelivery>),
+    Digest(Box<DueDigest>),
+}
+
+impl Work {
+    fn key(&self) -> (bool, i64) {
+        match self {
+            Work::Notice(d) => (false, d.id),
+            Work::Digest(d) => (true, d.id),
+        }
+    }
+    fn channel(&self) -> &str {
+        match self {
+            Work::Notice(d) => &d.channel,
+            Work::Digest(_) => "email",
+        }
+    }
+}
+
+/// What each send task shares.
+struct Shared {
+    store: Store,
+    cfg: Arc<Config>,
+    channels: Channels,
+    key: TokenKey,
+    clock: Arc<dyn Clock>,
+    schedule: RetrySchedule,
+}
+
+/// Runs until `stop` is cancelled, checking for due deliveries and digests
+/// every `every` and sending up to the [`Concurrency`] limit per channel.
+/// A delivery whose channel is busy stays pending for the next round.
+#[allow(clippy::too_many_arguments)]
 pub async fn run(
     store: Store,
     cfg: Arc<Config>,
@@ -104,16 +160,52 @@ pub async fn run(
     key: TokenKey,
     clock: Arc<dyn Clock>,
     every: std::time::Duration,
+    limits: Concurrency,
     stop: CancellationToken,
 ) {
-    let schedule = RetrySchedule::default();
+    use std::collections::HashSet;
+    use std::sync::Mutex;
+    use tokio::sync::Semaphore;
+    let shared = Arc::new(Shared {
+        store,
+        cfg,
+        channels,
+        key,
+        clock,
+        schedule: RetrySchedule::default(),
+    });
+    let permits = |n: usize| Arc::new(Semaphore::new(n.max(1)));
+    let (email, webhook, mqtt) = (
+        permits(limits.email),
+        permits(limits.webhook),
+        permits(limits.mqtt),
+    );
+    let in_flight: Arc<Mutex<HashSet<(bool, i64)>>> = Arc::default();
+    let mut tasks = tokio::task::JoinSet::new();
     loop {
         tokio::select! {
             _ = stop.cancelled() => break,
             _ = tokio::time::sleep(every) => {}
         }
-        let now = clock.now();
-        let due = match store.with(move |b| b.due_deliveries(now, 64)).await {
+        while tasks.try_join_next().is_some() {}
+        let now = shared.clock.now();
+        let due = shared
+            .store
+            .with(move |b| -> Result<Vec<Work>, crate::store::StoreError> {
+                let mut w: Vec<Work> = b
+                    .due_deliveries(now, 256)?
+                    .into_iter()
+                    .map(|d| Work::Notice(Box::new(d)))
+                    .collect();
+                w.extend(
+                    b.due_digests(now, 64)?
+                        .into_iter()
+                        .map(|d| Work::Digest(Box::new(d))),
+                );
+                Ok(w)
+            })
+            .await;
+        let due = match due {
             Ok(Ok(d)) => d,
             Ok(Err(error)) => {
                 tracing::warn!(%error, "Could not read the outbox");
@@ -121,39 +213,95 @@ pub async fn run(
             }
             Err(_) => break,
         };
-        for d in due {
+        for work in due {
             if stop.is_cancelled() {
                 break;
             }
-            let result = send(&cfg, &channels, &key, &d, clock.now()).await;
-            let at = clock.now();
-            let update = decide(&schedule, &d, result, at);
-            match &update {
-                DeliveryUpdate::Sent { .. } => {
-                    tracing::info!(notice = %d.notice.id(), channel = %d.channel, subscriber = %d.notice.subscriber_id, "Delivered")
-                }
-                DeliveryUpdate::Retry { next, error, .. } => {
-                    tracing::warn!(notice = %d.notice.id(), channel = %d.channel, %error, next = %next, "Delivery failed; will retry")
-                }
-                DeliveryUpdate::Failed { error, .. } => {
-                    tracing::error!(notice = %d.notice.id(), channel = %d.channel, %error, "Delivery failed for good")
-                }
+            let sem = match work.channel() {
+                "email" => &email,
+                "webhook" => &webhook,
+                _ => &mqtt,
+            };
+            let key = work.key();
+            if in_flight.lock().map(|s| s.contains(&key)).unwrap_or(true) {
+                continue;
             }
-            let id = d.id;
-            if !matches!(
-                store.with(move |b| b.finish_delivery(id, &update)).await,
-                Ok(Ok(()))
-            ) {
-                tracing::error!(delivery = id, "Could not record a delivery outcome");
+            let Ok(permit) = sem.clone().try_acquire_owned() else {
+                continue; // channel busy: next round
+            };
+            if let Ok(mut s) = in_flight.lock() {
+                s.insert(key);
             }
+            let (shared, in_flight) = (shared.clone(), in_flight.clone());
+            tasks.spawn(async move {
+                attempt(&shared, work).await;
+                if let Ok(mut s) = in_flight.lock() {
+                    s.remove(&key);
+                }
+                drop(permit);
+            });
         }
+    }
+    // Sends in progress finish (each is bounded by its channel's timeout)
+    // unless the caller's shutdown deadline aborts this task first.
+    while tasks.join_next().await.is_some() {}
+}
+
+/// One attempt: send, decide, record at once.
+async fn attempt(sh: &Shared, work: Work) {
+    let now = sh.clock.now();
+    let (result, attempts, first) = match &work {
+        Work::Notice(d) => (
+            send(&sh.cfg, &sh.channels, &sh.key, d, now).await,
+            d.attempts,
+            d.first_attempt_at,
+        ),
+        Work::Digest(d) => (
+            send_digest(&sh.cfg, &sh.channels, &sh.key, &d.digest, now).await,
+            d.attempts,
+            d.first_attempt_at,
+        ),
+    };
+    let at = sh.clock.now();
+    let update = decide(&sh.schedule, attempts, first, result, at);
+    let (what, subscriber) = match &work {
+        Work::Notice(d) => (
+            d.notice.id().as_str().to_string(),
+            d.notice.subscriber_id.clone(),
+        ),
+        Work::Digest(d) => (d.digest.id(), d.digest.subscriber_id.clone()),
+    };
+    let channel = work.channel().to_string();
+    match &update {
+        DeliveryUpdate::Sent { .. } => {
+            tracing::info!(notice = %what, %channel, %subscriber, "Delivered")
+        }
+        DeliveryUpdate::Retry { next, error, .. } => {
+            tracing::warn!(notice = %what, %channel, %error, next = %next, "Delivery failed; will retry")
+        }
+        DeliveryUpdate::Failed { error, .. } => {
+            tracing::error!(notice = %what, %channel, %error, "Delivery failed for good")
+        }
+    }
+    let recorded = match work {
+        Work::Notice(d) => {
+            sh.store
+                .with(move |b| b.finish_delivery(d.id, &update))
+                .await
+        }
+        Work::Digest(d) => sh.store.with(move |b| b.finish_digest(d.id, &update)).await,
+    };
+    if !matches!(recorded, Ok(Ok(()))) {
+        tracing::error!(notice = %what, "Could not record a delivery outcome");
     }
 }
 
-/// The outcome of one attempt, as the store should record it.
+/// The outcome of one attempt, as the store should record it: `attempts`
+/// made before this one, the first made at `first_attempt_at`.
 pub fn decide(
     schedule: &RetrySchedule,
-    d: &DueDelivery,
+    attempts: u32,
+    first_attempt_at: Option<DateTime<Utc>>,
     result: Result<(), DeliveryError>,
     at: DateTime<Utc>,
 ) -> DeliveryUpdate {
@@ -164,8 +312,8 @@ pub fn decide(
             error: e.message,
         },
         Err(e) => {
-            let first = d.first_attempt_at.unwrap_or(at);
-            match schedule.next_attempt(first, d.attempts + 1, at) {
+            let first = first_attempt_at.unwrap_or(at);
+            match schedule.next_attempt(first, attempts + 1, at) {
                 Some(next) => DeliveryUpdate::Retry {
                     at,
                     next,
@@ -178,6 +326,100 @@ pub fn decide(
             }
         }
     }
+}
+
+/// The subscriber's unsubscribe link, signed now.
+fn unsubscribe_url(cfg: &Config, key: &TokenKey, sub: &Subscriber, now: DateTime<Utc>) -> String {
+    let token = sign_token(
+        key,
+        Purpose::Unsubscribe,
+        &sub.id,
+        now + Duration::days(LINK_DAYS),
+    );
+    format!("{}/unsubscribe/{token}", cfg.service.public_url)
+}
+
+/// Sends one email on the configured route (SMTP or the mail folder).
+async fn send_email(route: &EmailRoute, email: &OutgoingEmail) -> Result<(), DeliveryError> {
+    match route {
+        EmailRoute::Smtp { sender, .. } => sender.send(email).await,
+        EmailRoute::Folder { sender } => sender.send(email).await.map(|_| ()),
+    }
+}
+
+fn sender_of(route: &EmailRoute) -> (&str, Option<&str>) {
+    match route {
+        EmailRoute::Smtp { from, mailto, .. } => (from.as_str(), mailto.as_deref()),
+        EmailRoute::Folder { .. } => (FOLDER_FROM, None),
+    }
+}
+
+/// The digest email for `d` (shared by the worker and `outrider digest`).
+pub fn digest_email(
+    cfg: &Config,
+    sub: &Subscriber,
+    d: &Digest,
+    from: &str,
+    mailto: Option<&str>,
+    unsubscribe_url: &str,
+    now: DateTime<Utc>,
+) -> Result<OutgoingEmail, DeliveryError> {
+    let Some(to) = &sub.email else {
+        return Err(DeliveryError::permanent(
+            "no email address for this subscriber",
+        ));
+    };
+    let ctx = DigestContext {
+        subscriber_name: &sub.name,
+        time_zone: sub.timezone,
+        status_url: Some(&cfg.service.public_url),
+        unsubscribe_url,
+    };
+    let r = render_digest(d, &ctx);
+    let message_id = message_id(&d.id(), from).ok_or_else(|| {
+        DeliveryError::permanent("cannot form a Message-ID from the sender address")
+    })?;
+    Ok(OutgoingEmail {
+        from: from.to_string(),
+        to: to.clone(),
+        subject: r.subject,
+        text: r.text,
+        html: r.html,
+        message_id,
+        date: now,
+        headers: crate::notify::render::list_unsubscribe_headers(unsubscribe_url, mailto),
+        inline_images: r
+            .chart_png
+            .map(|bytes| InlineImage {
+                content_id: CHART_CID.to_string(),
+                content_type: "image/png".to_string(),
+                bytes,
+            })
+            .into_iter()
+            .collect(),
+    })
+}
+
+async fn send_digest(
+    cfg: &Config,
+    ch: &Channels,
+    key: &TokenKey,
+    d: &Digest,
+    now: DateTime<Utc>,
+) -> Result<(), DeliveryError> {
+    let Some(sub) = cfg.subscribers.iter().find(|s| s.id == d.subscriber_id) else {
+        return Err(DeliveryError::permanent(format!(
+            "subscriber `{}` is no longer in the configuration",
+            d.subscriber_id
+        )));
+    };
+    let Some(route) = &ch.email else {
+        return Err(DeliveryError::permanent("no email route"));
+    };
+    let (from, mailto) = sender_of(route);
+    let url = unsubscribe_url(cfg, key, sub, now);
+    let email = digest_email(cfg, sub, d, from, mailto, &url, now)?;
+    send_email(route, &email).await
 }
 
 fn subscriber<'c>(cfg: &'c Config, n: &Notice) -> Option<&'c Subscriber> {
@@ -206,13 +448,7 @@ async fn send(
                     "no email route or address for this subscriber",
                 ));
             };
-            let token = sign_token(
-                key,
-                Purpose::Unsubscribe,
-                &sub.id,
-                now + Duration::days(LINK_DAYS),
-            );
-            let unsubscribe_url = format!("{}/unsubscribe/{token}", cfg.service.public_url);
+            let unsubscribe_url = unsubscribe_url(cfg, key, sub, now);
             let chance = n
                 .evidence
                 .p_value
@@ -224,10 +460,7 @@ async fn send(
                 unsubscribe_url: &unsubscribe_url,
             };
             let r = render_email(n, &ctx);
-            let (from, mailto) = match route {
-                EmailRoute::Smtp { from, mailto, .. } => (from.as_str(), mailto.as_deref()),
-                EmailRoute::Folder { .. } => (FOLDER_FROM, None),
-            };
+            let (from, mailto) = sender_of(route);
             let message_id = message_id(n.id().as_str(), from).ok_or_else(|| {
                 DeliveryError::permanent("cannot form a Message-ID from the sender address")
             })?;
@@ -240,11 +473,9 @@ async fn send(
                 message_id,
                 date: now,
                 headers: crate::notify::render::list_unsubscribe_headers(&unsubscribe_url, mailto),
+                inline_images: Vec::new(),
             };
-            match route {
-                EmailRoute::Smtp { sender, .. } => sender.send(&email).await,
-                EmailRoute::Folder { sender } => sender.send(&email).await.map(|_| ()),
-            }
+            send_email(route, &email).await
         }
         "webhook" => {
             let (Some(sender), Some(hook)) = (&ch.webhook, &sub.webhook) else {

@@ -87,6 +87,14 @@ pub fn render_text(s: &StatusCounts) -> String {
         out.push_str(&format!("  {d:<22}{n}\n"));
     }
     out.push_str(&format!("outbox pending        {}\n", s.outbox_pending));
+    for (what, counts) in [("deliveries", &s.deliveries), ("digests", &s.digests)] {
+        if !counts.is_empty() {
+            out.push_str(&format!("{what}\n"));
+            for (state, n) in counts {
+                out.push_str(&format!("  {state:<22}{n}\n"));
+            }
+        }
+    }
     out.push_str(&format!("deployments silent    {}\n", s.deployments_silent));
     out
 }

@@ -235,6 +235,7 @@ fn email_for(n: &Notice, to: &str) -> OutgoingEmail {
         message_id: outrider::deliver::email::message_id(n.id().as_str(), from).unwrap(),
         date: n.at,
         headers: list_unsubscribe_headers(UNSUBSCRIBE, Some(MAILTO)),
+        inline_images: vec![],
     }
 }
 

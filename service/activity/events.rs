@@ -603,6 +603,14 @@ impl EventLedger {
         g.event_at(seen.at).map(|(s, span)| g.materialise(s, &span))
     }
 
+    /// The species with events or triggers held at a deployment, sorted.
+    pub fn species_at<'a>(&'a self, deployment_id: &str) -> impl Iterator<Item = &'a str> + 'a {
+        self.index
+            .get(deployment_id)
+            .into_iter()
+            .flat_map(|m| m.keys().map(String::as_str))
+    }
+
     /// Independent events of one group that start in [from, to): the count
     /// `c` of a spike test.
     pub fn count_starting_in(

@@ -33,7 +33,7 @@ pub use baseline::{
 pub use cusum::{CusumError, CusumParams, CusumState, CusumStep};
 pub use effort::{rai, EffortError, Uptime};
 pub use events::{collapse, Change, EventId, EventLedger, IndependentEvent, Trigger};
-pub use special::{nbinom_upper_tail, poisson_upper_tail};
+pub use special::{critical_count, nbinom_upper_tail, poisson_upper_tail};
 pub use words::chance_in_words;
 
 /// Shared helpers for the reference-data tests.

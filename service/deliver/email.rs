@@ -91,6 +91,19 @@ pub struct OutgoingEmail {
     /// Extra header fields in order, e.g. the output of
     /// [`crate::notify::render::list_unsubscribe_headers`].
     pub headers: Vec<(&'static str, String)>,
+    /// Images the HTML part shows by `cid:` (RFC 2392), sent with it in a
+    /// multipart/related part (RFC 2387): no remote images.
+    pub inline_images: Vec<InlineImage>,
+}
+
+/// An image carried inside the message.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct InlineImage {
+    /// The Content-ID without angle brackets, e.g. `chart@outrider`.
+    pub content_id: String,
+    /// A MIME type such as `image/png`.
+    pub content_type: String,
+    pub bytes: Vec<u8>,
 }
 
 /// Transport settings that are not part of the `[smtp]` config.
@@ -323,17 +336,28 @@ pub fn build_message(email: &OutgoingEmail) -> Result<Message, DeliveryError> {
     }
     let from = parse_mailbox(&email.from, "from")?;
     let to = parse_mailbox(&email.to, "to")?;
-    let body = MultiPart::alternative()
-        .singlepart(
-            SinglePart::builder()
-                .header(ContentType::TEXT_PLAIN)
-                .body(email.text.clone()),
-        )
-        .singlepart(
-            SinglePart::builder()
-                .header(ContentType::TEXT_HTML)
-                .body(email.html.clone()),
-        );
+    let text = SinglePart::builder()
+        .header(ContentType::TEXT_PLAIN)
+        .body(email.text.clone());
+    let html = SinglePart::builder()
+        .header(ContentType::TEXT_HTML)
+        .body(email.html.clone());
+    let body = if email.inline_images.is_empty() {
+        MultiPart::alternative().singlepart(text).singlepart(html)
+    } else {
+        // multipart/alternative { text, multipart/related { html, images } }
+        let mut related = MultiPart::related().singlepart(html);
+        for img in &email.inline_images {
+            let ct = ContentType::parse(&img.content_type).map_err(|e| {
+                DeliveryError::permanent(format!("bad image type {:?}: {e}", img.content_type))
+            })?;
+            related = related.singlepart(
+                lettre::message::Attachment::new_inline(header_safe(&img.content_id))
+                    .body(lettre::message::Body::new(img.bytes.clone()), ct),
+            );
+        }
+        MultiPart::alternative().singlepart(text).multipart(related)
+    };
     let mut builder = Message::builder()
         .from(from)
         .to(to)
@@ -394,6 +418,7 @@ mod tests {
                 ),
                 ("List-Unsubscribe-Post", "List-Unsubscribe=One-Click".into()),
             ],
+            inline_images: vec![],
         }
     }
 

@@ -8,7 +8,7 @@ pub mod feed;
 
 use crate::clock::{Clock, ScaledClock};
 use anyhow::Context;
-use chrono::{DateTime, Duration, DurationRound, Utc};
+use chrono::{DateTime, Duration, Utc};
 use rumqttc::{AsyncClient, MqttOptions, QoS};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -186,10 +186,15 @@ pub fn write_files(
 
 /// Runs the demo to the end of its duration or an interrupt.
 pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<()> {
-    // Simulated time starts now, to the minute, and runs `speed` times faster.
-    let start = real_now
-        .duration_trunc(Duration::minutes(1))
-        .unwrap_or(real_now);
+    // Simulated time starts at the last 04:30 in the district (before
+    // dawn: night watches still apply) and runs `speed` times faster, so
+    // the scripted happenings and then the 06:00-07:00 digests come within
+    // the first minute at the default speed.
+    let start = crate::digest::latest_due(
+        real_now,
+        chrono::NaiveTime::from_hms_opt(4, 30, 0).unwrap_or_default(),
+        chrono_tz::Australia::Sydney,
+    );
     let history_from = start - Duration::days(opts.history_days.max(0));
     let port = free_port()?;
     let cfg_path = write_files(

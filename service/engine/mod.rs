@@ -24,7 +24,10 @@
 //! Every candidate then goes through [`crate::notify::Policy`] (cooldown,
 //! hourly cap, quiet hours), and every decision comes out with its reason.
 
+mod digest;
 pub mod rules;
+
+pub use digest::{usual_high, DIGESTS_PER_TICK};
 
 use crate::activity::{
     baseline_window, spike_test, Change, EventId, EventLedger, IndependentEvent, SpikeEvidence,
@@ -54,6 +57,8 @@ pub enum Output {
         reason: String,
         channels: Vec<crate::config::Channel>,
     },
+    /// A daily digest is due: queue it (once per subscriber and due instant).
+    Digest(Box<crate::digest::Digest>),
 }
 
 /// What the engine remembers of an event besides the ledger's numbers.
@@ -94,6 +99,10 @@ pub struct Engine {
     cusum: HashMap<(usize, usize, usize, String), CusumState>,
     /// The last local day (service time zone) whose CUSUM step is done.
     last_day: Option<NaiveDate>,
+    /// Digest schedule; `None` until [`Engine::schedule_digests`].
+    digests: Option<digest::DigestQueue>,
+    /// The latest common name the messages gave per scientific name.
+    vernacular: HashMap<String, String>,
 }
 
 /// Days of history the CUSUM runs over quietly at start, so a build-up
@@ -156,6 +165,8 @@ impl Engine {
             pending: HashMap::new(),
             cusum: HashMap::new(),
             last_day: None,
+            digests: None,
+            vernacular: HashMap::new(),
             cfg,
         }
     }
@@ -289,6 +300,11 @@ impl Engine {
     }
 
     fn animal(&mut self, o: &Observation, name: &str, now: DateTime<Utc>, out: &mut Vec<Output>) {
+        if let Some(v) = &o.vernacular_name {
+            if self.vernacular.get(name) != Some(v) {
+                self.vernacular.insert(name.to_string(), v.clone());
+            }
+        }
         let change = self.ledger.insert(Trigger {
             observation_id: o.observation_id.clone(),
             deployment_id: o.deployment_id.clone(),
@@ -534,6 +550,7 @@ impl Engine {
             return out;
         }
         self.close_days(now, &mut out);
+        self.due_digests(now, &mut out);
         if self.options.assume_operating {
             return out;
         }

@@ -96,6 +96,8 @@ pub struct StatusCounts {
     pub outbox_pending: u64,
     /// Deliveries by state (pending, sent, failed).
     pub deliveries: BTreeMap<String, u64>,
+    /// Daily digests by state (pending, sent, failed).
+    pub digests: BTreeMap<String, u64>,
     pub deployments_silent: u64,
     pub heartbeats_stored: u64,
     pub corrections_stored: u64,
@@ -131,6 +133,19 @@ pub trait Backend: Send + 'static {
         id: i64,
         update: &sqlite::DeliveryUpdate,
     ) -> Result<(), StoreError>;
+    /// Pending digests due at `now`, oldest first.
+    fn due_digests(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<sqlite::DueDigest>, StoreError>;
+    /// Records the outcome of a digest's delivery attempt.
+    fn finish_digest(&mut self, id: i64, update: &sqlite::DeliveryUpdate)
+        -> Result<(), StoreError>;
+    /// The due instant of the last digest recorded per subscriber.
+    fn last_digests(
+        &mut self,
+    ) -> Result<std::collections::HashMap<String, DateTime<Utc>>, StoreError>;
     /// Flushes what can be flushed before the process exits.
     fn close(&mut self) -> Result<(), StoreError>;
 }

@@ -6,12 +6,14 @@ use crate::engine::Output;
 use crate::model::{Message, ObservationType, RejectReason, Rejection};
 use chrono::{DateTime, Utc};
 use rusqlite::{params, Connection, OpenFlags, OptionalExtension};
+use std::collections::HashMap;
 use std::path::Path;
 
 /// The migrations, in order. Never edit one that has shipped: add another.
 pub const MIGRATIONS: &[(&str, &str)] = &[
     ("0001_init", include_str!("migrations/0001_init.sql")),
     ("0002_derived", include_str!("migrations/0002_derived.sql")),
+    ("0003_digests", include_str!("migrations/0003_digests.sql")),
 ];
 
 /// How hard SQLite works to keep a commit on disk.
@@ -179,6 +181,62 @@ fn store_derived(tx: &rusqlite::Transaction<'_>, d: &Output) -> rusqlite::Result
                 }
             }
         }
+        Output::Digest(d) => {
+            let mut d = d.as_ref().clone();
+            fill_digest(tx, &mut d)?;
+            tx.prepare_cached("INSERT INTO digests (subscriber_id, due_at, body, state, next_attempt_at, created_at) VALUES (?1, ?2, ?3, 'pending', ?2, ?2) ON CONFLICT DO NOTHING")?
+                .execute(params![d.subscriber_id, ms(d.due_at), serde_json::to_string(&d).unwrap_or_default()])?;
+        }
+    }
+    Ok(())
+}
+
+/// Most notice lines and failures one digest lists.
+const DIGEST_LIST_LIMIT: i64 = 200;
+
+/// Adds to a digest what the store knows of its period: the subscriber's
+/// notice decisions and, for a coordinator, the deliveries that failed for
+/// good (notices and digests of every subscriber).
+pub fn fill_digest(c: &Connection, d: &mut crate::digest::Digest) -> rusqlite::Result<()> {
+    use crate::digest::{FailedDelivery, NoticeLine};
+    let (from, to) = (ms(d.from), ms(d.to));
+    let mut stmt = c.prepare_cached(
+        "SELECT at, watch, trigger, disposition, deployment_id, scientific_name, reason FROM notices
+         WHERE subscriber_id = ?1 AND at >= ?2 AND at < ?3 ORDER BY at, id LIMIT ?4",
+    )?;
+    d.notices = stmt
+        .query_map(params![d.subscriber_id, from, to, DIGEST_LIST_LIMIT], |r| {
+            Ok(NoticeLine {
+                at: from_ms(r.get(0)?),
+                watch: r.get(1)?,
+                trigger: r.get(2)?,
+                disposition: r.get(3)?,
+                deployment_id: r.get(4)?,
+                scientific_name: r.get(5)?,
+                reason: r.get(6)?,
+            })
+        })?
+        .collect::<rusqlite::Result<_>>()?;
+    if d.coordinator {
+        let mut stmt = c.prepare_cached(
+            "SELECT n.subscriber_id, d.channel, d.notice_id, d.done_at, coalesce(d.last_error, '') FROM deliveries d JOIN notices n ON n.id = d.notice_id
+               WHERE d.state = 'failed' AND d.done_at >= ?1 AND d.done_at < ?2
+             UNION ALL
+             SELECT subscriber_id, 'email (digest)', 'digest', done_at, coalesce(last_error, '') FROM digests
+               WHERE state = 'failed' AND done_at >= ?1 AND done_at < ?2
+             ORDER BY 4 LIMIT ?3",
+        )?;
+        d.failures = stmt
+            .query_map(params![from, to, DIGEST_LIST_LIMIT], |r| {
+                Ok(FailedDelivery {
+                    subscriber_id: r.get(0)?,
+                    channel: r.get(1)?,
+                    notice_id: r.get(2)?,
+                    at: from_ms(r.get(3)?),
+                    error: r.get(4)?,
+                })
+            })?
+            .collect::<rusqlite::Result<_>>()?;
     }
     Ok(())
 }
@@ -441,6 +499,11 @@ impl Backend for Sqlite {
             let (d, n) = row?;
             s.deliveries.insert(d, n.max(0) as u64);
         }
+        let mut stmt = c.prepare("SELECT state, count(*) FROM digests GROUP BY state")?;
+        for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
+            let (d, n) = row?;
+            s.digests.insert(d, n.max(0) as u64);
+        }
         let mut stmt =
             c.prepare("SELECT reason, count(*) FROM rejected GROUP BY reason ORDER BY reason")?;
         for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
@@ -475,6 +538,22 @@ impl Backend for Sqlite {
 
     fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
         Sqlite::finish_delivery(self, id, update)
+    }
+
+    fn due_digests(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<DueDigest>, StoreError> {
+        Sqlite::due_digests(self, now, limit)
+    }
+
+    fn finish_digest(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
+        Sqlite::finish_digest(self, id, update)
+    }
+
+    fn last_digests(&mut self) -> Result<HashMap<String, DateTime<Utc>>, StoreError> {
+        Sqlite::last_digests(self)
     }
 
     fn close(&mut self) -> Result<(), StoreError> {
@@ -542,6 +621,15 @@ pub struct DueDelivery {
     pub notice: crate::notify::Notice,
 }
 
+/// A digest that is due to be sent.
+#[derive(Debug, Clone)]
+pub struct DueDigest {
+    pub id: i64,
+    pub attempts: u32,
+    pub first_attempt_at: Option<DateTime<Utc>>,
+    pub digest: crate::digest::Digest,
+}
+
 /// What became of one attempt.
 #[derive(Debug, Clone, PartialEq)]
 pub enum DeliveryUpdate {
@@ -603,22 +691,83 @@ impl Sqlite {
         Ok(out)
     }
 
+    /// Pending digests due at `now`, oldest first.
+    pub fn due_digests(
+        &mut self,
+        now: DateTime<Utc>,
+        limit: usize,
+    ) -> Result<Vec<DueDigest>, StoreError> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT id, attempts, first_attempt_at, body FROM digests
+             WHERE state = 'pending' AND next_attempt_at <= ?1 ORDER BY next_attempt_at, id LIMIT ?2",
+        )?;
+        let rows = stmt
+            .query_map(params![ms(now), limit as i64], |r| {
+                Ok((
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, Option<i64>>(2)?,
+                    r.get::<_, String>(3)?,
+                ))
+            })?
+            .collect::<rusqlite::Result<Vec<_>>>()?;
+        drop(stmt);
+        let mut out = Vec::new();
+        for (id, attempts, first, body) in rows {
+            match serde_json::from_str(&body) {
+                Ok(digest) => out.push(DueDigest {
+                    id,
+                    attempts: attempts.max(0) as u32,
+                    first_attempt_at: first.map(from_ms),
+                    digest,
+                }),
+                Err(e) => {
+                    self.conn.execute(
+                        "UPDATE digests SET state = 'failed', last_error = ?2, done_at = ?3 WHERE id = ?1",
+                        params![id, format!("unreadable digest: {e}"), ms(now)],
+                    )?;
+                }
+            }
+        }
+        Ok(out)
+    }
+
+    /// Records the outcome of a digest's attempt.
+    pub fn finish_digest(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
+        finish(&self.conn, "digests", id, update)
+    }
+
+    /// The due instant of the last digest recorded per subscriber.
+    pub fn last_digests(&mut self) -> Result<HashMap<String, DateTime<Utc>>, StoreError> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT subscriber_id, max(due_at) FROM digests GROUP BY subscriber_id",
+        )?;
+        let rows = stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, from_ms(r.get(1)?))))?;
+        Ok(rows.collect::<rusqlite::Result<_>>()?)
+    }
+
     /// Records the outcome of an attempt.
     pub fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
-        match update {
-            DeliveryUpdate::Sent { at } => self.conn.execute(
-                "UPDATE deliveries SET state = 'sent', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = NULL WHERE id = ?1",
-                params![id, ms(*at)],
-            )?,
-            DeliveryUpdate::Retry { at, next, error } => self.conn.execute(
-                "UPDATE deliveries SET attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), next_attempt_at = ?3, last_error = ?4 WHERE id = ?1",
-                params![id, ms(*at), ms(*next), error],
-            )?,
-            DeliveryUpdate::Failed { at, error } => self.conn.execute(
-                "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = ?3 WHERE id = ?1",
-                params![id, ms(*at), error],
-            )?,
-        };
-        Ok(())
+        finish(&self.conn, "deliveries", id, update)
     }
+}
+
+/// Records an attempt's outcome in `table` (deliveries or digests: the
+/// same state columns).
+fn finish(c: &Connection, table: &str, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
+    match update {
+        DeliveryUpdate::Sent { at } => c.execute(
+            &format!("UPDATE {table} SET state = 'sent', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = NULL WHERE id = ?1"),
+            params![id, ms(*at)],
+        )?,
+        DeliveryUpdate::Retry { at, next, error } => c.execute(
+            &format!("UPDATE {table} SET attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), next_attempt_at = ?3, last_error = ?4 WHERE id = ?1"),
+            params![id, ms(*at), ms(*next), error],
+        )?,
+        DeliveryUpdate::Failed { at, error } => c.execute(
+            &format!("UPDATE {table} SET state = 'failed', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = ?3 WHERE id = ?1"),
+            params![id, ms(*at), error],
+        )?,
+    };
+    Ok(())
 }

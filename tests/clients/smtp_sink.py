@@ -149,7 +149,13 @@ def walk(part):
     else:
         node["charset"] = part.get_content_charset()
         node["cte"] = part.get("Content-Transfer-Encoding")
-        node["content"] = part.get_content()
+        content = part.get_content()
+        if isinstance(content, bytes):
+            # Binary parts (the digest's chart): their size and Content-ID.
+            node["bytes"] = len(content)
+            node["content_id"] = part.get("Content-ID")
+        else:
+            node["content"] = content
     return node
 
 
