@@ -17,7 +17,9 @@
 //! - `startup`: `load_history` + `Engine::warm` from a year-long store.
 //!
 //! `cargo bench --bench engine -- memory` instead prints the peak memory
-//! (VmHWM) of building the 100k x 10k rule book in a process of its own.
+//! (VmHWM) of building the 100k x 10k rule book in a process of its own;
+//! `cargo bench --bench engine -- digests` times building, queuing (real
+//! SQLite, synchronous=FULL) and rendering 100,000 daily digests.
 
 use chrono::{DateTime, Duration, Timelike, Utc};
 use criterion::{BenchmarkId, Criterion, Throughput};
@@ -918,6 +920,131 @@ fn memory_report() {
     black_box(book);
 }
 
+/// 100,000 subscribers over the 100-camera network, all with a digest
+/// due at the same 06:30: built through `Engine::tick` (the daemon's path,
+/// at most `DIGESTS_PER_TICK` per tick), committed to a real store, then
+/// read back and rendered to complete RFC 5322 messages (the send path
+/// without the SMTP round trip).
+fn digest_report() {
+    use outrider::digest::render::{render_digest, DigestContext};
+    use outrider::engine::Output;
+    let n = 100_000;
+    let sites = grid(NET_SIDE, NET_SPACING_KM);
+    let template = r#"[[subscriber]]
+id = "template"
+email = "t@land.example"
+digest_at = "06:30"
+area = { lat = -31.6, lon = 148.1, radius_km = 5.0 }
+  [[subscriber.watch]]
+  name = "predators"
+  trigger = "presence"
+  species = ["@predators", "Sus scrofa"]
+  channels = ["email"]
+"#;
+    let mut cfg = config(&sites, template);
+    let proto = cfg.subscribers[0].clone();
+    let half = (NET_SIDE as f64 - 1.0) * NET_SPACING_KM / 2.0;
+    let mut rng = SmallRng::seed_from_u64(5);
+    cfg.subscribers = (0..n)
+        .map(|i| {
+            let mut s = proto.clone();
+            let (lat, lon) = offset(rng.gen_range(-half..half), rng.gen_range(-half..half));
+            let radius_km = rng.gen_range(1.0..8.0);
+            s.id = format!("sub-{i:07}");
+            s.email = Some(format!("sub{i}@land.example"));
+            s.area_spec = AreaSpec::Circle {
+                lat,
+                lon,
+                radius_km,
+            };
+            let centre = LatLon::new(lat, lon).expect("inside the district");
+            s.area = Area::Circle(Circle::new(centre, radius_km).expect("radius in range"));
+            s
+        })
+        .collect();
+    let cfg = Arc::new(cfg);
+    let tz = chrono_tz::Australia::Sydney;
+    let at = chrono::NaiveTime::from_hms_opt(6, 30, 0).expect("valid time");
+    let due = outrider::digest::latest_due(now0() + Duration::hours(12), at, tz);
+    let history = feed(&sites, due - Duration::days(35), due);
+    let mut engine = Engine::new(cfg.clone());
+    engine.warm(history.iter());
+    // Every subscriber had yesterday's digest: today's is due for all.
+    let last = cfg
+        .subscribers
+        .iter()
+        .map(|s| (s.id.clone(), due - Duration::days(1)))
+        .collect();
+    engine.schedule_digests(last);
+    let dir = std::env::temp_dir().join(format!("outrider-digest-bench-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    let mut db = Sqlite::open(&dir, Durability::Full).expect("bench store");
+    let (mut built, mut build_s, mut queue_s) = (0usize, 0.0, 0.0);
+    let mut tick = due + Duration::seconds(1);
+    while built < n {
+        let t = Instant::now();
+        let out: Vec<Output> = engine
+            .tick(tick)
+            .into_iter()
+            .filter(|o| matches!(o, Output::Digest(_)))
+            .collect();
+        build_s += t.elapsed().as_secs_f64();
+        built += out.len();
+        let t = Instant::now();
+        db.commit(&[], &out).expect("queue digests");
+        queue_s += t.elapsed().as_secs_f64();
+        tick += Duration::seconds(1);
+        if out.is_empty() {
+            break;
+        }
+    }
+    let t = Instant::now();
+    let mut rendered = 0usize;
+    let mut bytes = 0usize;
+    let mut ids = Vec::new();
+    loop {
+        let due_now = db.due_digests(tick, 2000).expect("read digests");
+        if due_now.is_empty() {
+            break;
+        }
+        for d in &due_now {
+            let sub = &cfg.subscribers[d.digest.subscriber_id[4..].parse::<usize>().unwrap_or(0)];
+            let r = render_digest(
+                &d.digest,
+                &DigestContext {
+                    subscriber_name: &sub.name,
+                    time_zone: sub.timezone,
+                    status_url: Some("https://pests.kellerby.example"),
+                    unsubscribe_url: "https://pests.kellerby.example/unsubscribe/x",
+                },
+            );
+            bytes += r.html.len() + r.text.len() + r.chart_png.as_ref().map_or(0, Vec::len);
+            rendered += 1;
+            ids.push(d.id);
+        }
+        // Mark them sent so the next read moves on (as the worker does).
+        for id in ids.drain(..) {
+            db.finish_digest(
+                id,
+                &outrider::store::sqlite::DeliveryUpdate::Sent { at: tick },
+            )
+            .expect("mark sent");
+        }
+    }
+    let render_s = t.elapsed().as_secs_f64();
+    println!(
+        "digests: {built} built in {build_s:.1} s ({:.0} µs each) through Engine::tick",
+        build_s * 1e6 / built.max(1) as f64
+    );
+    println!("digests: queued (SQLite, synchronous=FULL, with their notices) in {queue_s:.1} s");
+    println!("digests: {rendered} read back, rendered (text + HTML + PNG chart, {:.1} KiB each) and marked sent in {render_s:.1} s", bytes as f64 / 1024.0 / rendered.max(1) as f64);
+    println!(
+        "digests: total {:.1} s for {n} digests",
+        build_s + queue_s + render_s
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
 criterion::criterion_group!(
     benches,
     hot_path,
@@ -930,6 +1057,10 @@ criterion::criterion_group!(
 fn main() {
     if std::env::args().skip(1).any(|a| a == "memory") {
         memory_report();
+        return;
+    }
+    if std::env::args().skip(1).any(|a| a == "digests") {
+        digest_report();
         return;
     }
     benches();

@@ -100,6 +100,7 @@ where
     // drains this channel, so the pipeline waits here only briefly.
     let (ack_tx, ack_rx) = tokio::sync::mpsc::channel(PIPELINE_QUEUE);
     let stop_reading = CancellationToken::new();
+    let wake_outbox = Arc::new(tokio::sync::Notify::new());
     let pipeline_done = CancellationToken::new();
 
     let reply = MqttReply {
@@ -108,11 +109,12 @@ where
         topic_prefix: cfg.mqtt.topic_prefix.clone(),
     };
     let pipeline_task = {
-        let (store, counters, clock, done) = (
+        let (store, counters, clock, done, wake) = (
             store.clone(),
             counters.clone(),
             clock.clone(),
             pipeline_done.clone(),
+            wake_outbox.clone(),
         );
         tokio::spawn(async move {
             pipeline::run(
@@ -124,6 +126,7 @@ where
                 Some(reply),
                 counters,
                 TICK_EVERY,
+                wake,
             )
             .await;
             done.cancel();
@@ -151,6 +154,7 @@ where
             clock.clone(),
             OUTBOX_EVERY,
             crate::outbox::Concurrency::default(),
+            wake_outbox.clone(),
             outbox_stop.clone(),
         ))
     };

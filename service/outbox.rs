@@ -150,7 +150,8 @@ struct Shared {
 }
 
 /// Runs until `stop` is cancelled, checking for due deliveries and digests
-/// every `every` and sending up to the [`Concurrency`] limit per channel.
+/// every `every`, and at once when `wake` is notified (the pipeline does
+/// after committing a notice to send), sending up to the [`Concurrency`] limit per channel.
 /// A delivery whose channel is busy stays pending for the next round.
 #[allow(clippy::too_many_arguments)]
 pub async fn run(
@@ -161,6 +162,7 @@ pub async fn run(
     clock: Arc<dyn Clock>,
     every: std::time::Duration,
     limits: Concurrency,
+    wake: Arc<tokio::sync::Notify>,
     stop: CancellationToken,
 ) {
     use std::collections::HashSet;
@@ -186,6 +188,7 @@ pub async fn run(
         tokio::select! {
             _ = stop.cancelled() => break,
             _ = tokio::time::sleep(every) => {}
+            _ = wake.notified() => {}
         }
         while tasks.try_join_next().is_some() {}
         let now = shared.clock.now();

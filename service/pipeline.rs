@@ -131,6 +131,7 @@ pub async fn run(
     reply: Option<MqttReply>,
     counters: Arc<Counters>,
     tick_every: std::time::Duration,
+    wake_outbox: Arc<tokio::sync::Notify>,
 ) {
     let mut batch: Vec<Inbound> = Vec::with_capacity(MAX_BATCH);
     let mut ticker = tokio::time::interval(tick_every);
@@ -141,8 +142,12 @@ pub async fn run(
             _ = ticker.tick() => {
                 // Time-driven checks (silent cameras).
                 let derived = engine.tick(clock.now());
+                let wake = derived.iter().any(queues_delivery);
                 if !derived.is_empty() && commit_until_done(&store, Vec::new(), derived, &counters).await.is_none() {
                     break;
+                }
+                if wake {
+                    wake_outbox.notify_one();
                 }
                 continue;
             }
@@ -170,6 +175,7 @@ pub async fn run(
             .iter()
             .filter(|d| matches!(d, Output::Notice { .. }))
             .count();
+        let wake = derived.iter().any(queues_delivery);
         let started = std::time::Instant::now();
         let outcomes = commit_until_done(&store, ingests.clone(), derived, &counters).await;
         let Some(outcomes) = outcomes else {
@@ -178,6 +184,10 @@ pub async fn run(
             break;
         };
         counters.observe_commit(started.elapsed());
+        if wake {
+            // Committed: the outbox can send now instead of at its next poll.
+            wake_outbox.notify_one();
+        }
         if notices > 0 {
             tracing::debug!(notices, "Notice decisions committed");
         }
@@ -214,6 +224,15 @@ pub async fn run(
 
 /// Commits, retrying transient failures (full disk, locked file) with
 /// back-off up to 30 s between tries; while it retries nothing is acked.
+/// Whether committing this output queues something for the outbox.
+fn queues_delivery(o: &Output) -> bool {
+    match o {
+        Output::Notice { notice, .. } => notice.disposition == crate::notify::Disposition::Sent,
+        Output::Digest(_) => true,
+        _ => false,
+    }
+}
+
 async fn commit_until_done(
     store: &Store,
     batch: Vec<Ingest>,

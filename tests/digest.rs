@@ -248,3 +248,73 @@ fn the_daemon_sends_each_digest_once_and_catches_up_after_downtime() {
     let (exit, _) = daemon.stop();
     assert!(exit.success());
 }
+
+#[test]
+fn send_test_reaches_email_webhook_and_mqtt() {
+    let dir = tempfile::tempdir().unwrap();
+    let smtp = Sink::smtp(&dir.path().join("smtp"), &[]);
+    let hook = Sink::webhook(&dir.path().join("hook"), &["--secret", "s3cret-for-test"]);
+    let mosquitto = Mosquitto::start(dir.path());
+    let extra = format!(
+        "[smtp]\nhost = \"127.0.0.1\"\nport = {}\nsecurity = \"none\"\nfrom = \"outrider <notices@kellerby.example>\"\n\n[[subscriber]]\nid = \"bellbird\"\nname = \"Bellbird\"\nemail = \"office@bellbird.example\"\narea = \"all\"\nwebhook = {{ url = \"http://127.0.0.1:{}/hook\", secret_env = \"TEST_HOOK_SECRET\" }}\n[[subscriber.watch]]\nname = \"pigs\"\ntrigger = \"presence\"\nspecies = [\"Sus scrofa\"]\nchannels = [\"email\", \"webhook\", \"mqtt\"]\n",
+        smtp.port, hook.port
+    );
+    let cfg = write_config(dir.path(), mosquitto.port, false, &extra);
+    let out = Command::new(BIN)
+        .args([
+            "send-test",
+            "-c",
+            cfg.to_str().unwrap(),
+            "--subscriber",
+            "bellbird",
+        ])
+        .env("TEST_HOOK_SECRET", "s3cret-for-test")
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    for ch in ["email", "webhook", "mqtt"] {
+        assert!(
+            stdout
+                .lines()
+                .any(|l| l.starts_with(ch) && l.contains(" ok: ")),
+            "{ch}: {stdout}"
+        );
+    }
+    // The email, read by Python's email package.
+    let files = smtp.messages();
+    assert_eq!(files.len(), 1);
+    let parsed = parse_eml(&files[0]);
+    assert_eq!(one_header(&parsed, "Subject"), "Test message from outrider");
+    // The webhook, its signature checked with Python's hmac.
+    let reqs = hook.log("requests.jsonl");
+    assert_eq!(reqs.len(), 1);
+    assert_eq!(reqs[0]["signature_ok"], true);
+    // A wrong SMTP port: that channel fails, exit code 1.
+    let bad = write_config(
+        dir.path(),
+        mosquitto.port,
+        false,
+        &extra.replace(
+            &format!("port = {}", smtp.port),
+            &format!("port = {}", free_port()),
+        ),
+    );
+    let out = Command::new(BIN)
+        .args([
+            "send-test",
+            "-c",
+            bad.to_str().unwrap(),
+            "--subscriber",
+            "bellbird",
+        ])
+        .env("TEST_HOOK_SECRET", "s3cret-for-test")
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("email    FAILED"));
+}
