@@ -48,31 +48,36 @@ pub fn height_of(count: f64, top: f64) -> u32 {
     ((count / top) * plot).round().clamp(0.0, plot) as u32
 }
 
+/// The palette, in index order (an indexed PNG: one byte per pixel, and
+/// long runs that deflate well, so the image stays a few KiB).
+const PALETTE: [[u8; 3]; 6] = [BACKGROUND, BAND, BAR, BAR_ABOVE, EXPECTED, AXIS];
+
+fn index_of(c: [u8; 3]) -> u8 {
+    PALETTE.iter().position(|p| *p == c).unwrap_or(0) as u8
+}
+
 struct Canvas {
     px: Vec<u8>,
 }
 
 impl Canvas {
     fn new() -> Self {
-        let mut px = Vec::with_capacity((WIDTH * HEIGHT * 3) as usize);
-        for _ in 0..WIDTH * HEIGHT {
-            px.extend_from_slice(&BACKGROUND);
+        Canvas {
+            px: vec![0; (WIDTH * HEIGHT) as usize],
         }
-        Canvas { px }
     }
 
     /// Fills `[x0, x1) x [y0, y1)` in image coordinates (y down).
     fn fill(&mut self, x0: u32, x1: u32, y0: u32, y1: u32, c: [u8; 3]) {
+        let i = index_of(c);
         for y in y0.min(HEIGHT)..y1.min(HEIGHT) {
-            for x in x0.min(WIDTH)..x1.min(WIDTH) {
-                let i = ((y * WIDTH + x) * 3) as usize;
-                self.px[i..i + 3].copy_from_slice(&c);
-            }
+            let row = (y * WIDTH) as usize;
+            self.px[row + x0.min(WIDTH) as usize..row + x1.min(WIDTH) as usize].fill(i);
         }
     }
 }
 
-/// The chart as PNG bytes (8-bit RGB). The bottom of the plot is the row
+/// The chart as PNG bytes (8-bit indexed colour). The bottom of the plot is the row
 /// `HEIGHT - MARGIN`; a bar of `h` pixels fills the `h` rows above it.
 pub fn png(nights: &[NightTotal]) -> Vec<u8> {
     let mut c = Canvas::new();
@@ -105,8 +110,9 @@ pub fn png(nights: &[NightTotal]) -> Vec<u8> {
 fn encode(px: &[u8]) -> Vec<u8> {
     let mut out = Vec::new();
     let mut enc = png::Encoder::new(&mut out, WIDTH, HEIGHT);
-    enc.set_color(png::ColorType::Rgb);
+    enc.set_color(png::ColorType::Indexed);
     enc.set_depth(png::BitDepth::Eight);
+    enc.set_palette(PALETTE.concat());
     // Writing to a Vec fails only on a size mismatch, which the fixed
     // canvas rules out; an empty result then simply shows no chart.
     if let Ok(mut w) = enc.write_header() {

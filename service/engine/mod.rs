@@ -101,6 +101,8 @@ pub struct Engine {
     last_day: Option<NaiveDate>,
     /// Digest schedule; `None` until [`Engine::schedule_digests`].
     digests: Option<digest::DigestQueue>,
+    /// Per-site digest numbers for the digests being built now.
+    digest_cache: Option<digest::DigestCache>,
     /// The latest common name the messages gave per scientific name.
     vernacular: HashMap<String, String>,
 }
@@ -166,6 +168,7 @@ impl Engine {
             cusum: HashMap::new(),
             last_day: None,
             digests: None,
+            digest_cache: None,
             vernacular: HashMap::new(),
             cfg,
         }
@@ -400,6 +403,20 @@ impl Engine {
                     }
                     _ => {
                         let (hours, ratio, min_count) = (w.window_hours, w.ratio, w.min_count);
+                        // A spike needs at least min_count events in the
+                        // window: when the count alone rules it out, the
+                        // effort walks and the gamma-Poisson tail are not
+                        // needed (same answer, a fraction of the cost).
+                        let to = event.start + Duration::milliseconds(1);
+                        let c = self.ledger.count_starting_in(
+                            &o.deployment_id,
+                            name,
+                            to - Duration::hours(i64::from(hours)),
+                            to,
+                        );
+                        if c < u64::from(min_count) {
+                            continue;
+                        }
                         let s = match spike_cache.get(&hours) {
                             Some(s) => s.clone(),
                             None => {
