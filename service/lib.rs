@@ -16,6 +16,8 @@
 //! - [`calendar`]: local time windows, seasons, DST-safe schedules.
 //! - [`notify`]: the notice model, fatigue control, retry schedule, signed
 //!   tokens, and the email text/HTML renderers.
+//! - [`digest`]: the daily digest's model, schedule rules, wording and
+//!   14-night PNG chart.
 //!
 //! - [`engine`]: the one core the daemon and replay both run: messages in,
 //!   event changes and notice decisions out.
@@ -32,6 +34,9 @@
 //! - [`demo`]: the invented district's synthetic feed.
 //! - [`app`]: starts and stops the tasks in order.
 //! - [`backup`]: `outrider backup`, a checked online copy of the store.
+//! - [`outbox`]: sends due notices and digests, per-channel concurrency,
+//!   back-off, each outcome recorded at once.
+//! - [`tools`]: `outrider digest` (preview) and `outrider send-test`.
 
 pub mod activity;
 pub mod app;
