@@ -9,6 +9,7 @@ mod config_examples;
 mod delivery;
 mod deploy;
 mod ingest;
+mod interchange;
 mod notices;
 mod replay;
 mod util;

@@ -1,0 +1,1 @@
+//! CAP 1.2 alerts (placeholder, filled in next).
