@@ -94,13 +94,69 @@ pub fn write_file(path: &Path, bytes: &[u8]) -> anyhow::Result<()> {
     std::fs::rename(&tmp, path).with_context(|| format!("writing {}", path.display()))
 }
 
-/// Writes the sent notices in `[from, to)` as CAP files; returns how many.
+/// Writes the sent notices decided in `[from, to)` as CAP files, one
+/// `<noticeID>.xml` each; returns how many. A retraction's `references`
+/// names the sent notices of the same subscriber and event it cancels.
 fn export_cap(
-    _cfg: &Config,
-    _dir: &Path,
-    _from: Option<DateTime<Utc>>,
-    _to: Option<DateTime<Utc>>,
-    _now: DateTime<Utc>,
+    cfg: &Config,
+    dir: &Path,
+    from: Option<DateTime<Utc>>,
+    to: Option<DateTime<Utc>>,
+    now: DateTime<Utc>,
 ) -> anyhow::Result<usize> {
-    anyhow::bail!("CAP export is not built yet")
+    use crate::interchange::cap::{alert, context_for, incident, sender_for, CapReference};
+    use crate::notify::{Notice, Trigger};
+    let state = &cfg.service.state_dir;
+    if !crate::store::db_path(state).exists() {
+        anyhow::bail!(
+            "no outrider store in {} (expected {})",
+            state.display(),
+            crate::store::DB_FILE
+        );
+    }
+    let db = crate::store::sqlite::Sqlite::open_read_only(state)?;
+    let mut stmt = db
+        .connection()
+        .prepare("SELECT notice FROM notices WHERE disposition = 'sent' ORDER BY at, id")?;
+    let mut notices: Vec<Notice> = Vec::new();
+    let mut unreadable = 0usize;
+    for row in stmt.query_map([], |r| r.get::<_, String>(0))? {
+        match serde_json::from_str::<Notice>(&row?) {
+            Ok(n) => notices.push(n),
+            Err(_) => unreadable += 1,
+        }
+    }
+    let sender = sender_for(&cfg.service.public_url);
+    let (from, to) = (from.unwrap_or(DateTime::<Utc>::MIN_UTC), to.unwrap_or(now));
+    let mut written = 0;
+    for n in notices.iter().filter(|n| n.at >= from && n.at < to) {
+        let references: Vec<CapReference> = if n.trigger == Trigger::Retraction {
+            notices
+                .iter()
+                .filter(|o| {
+                    o.trigger != Trigger::Retraction
+                        && o.subscriber_id == n.subscriber_id
+                        && o.event_id == incident(n)
+                })
+                .map(|o| CapReference {
+                    sender: sender.clone(),
+                    identifier: o.id().to_string(),
+                    sent: o.at,
+                })
+                .collect()
+        } else {
+            Vec::new()
+        };
+        let sub = cfg.subscribers.iter().find(|s| s.id == n.subscriber_id);
+        let ctx = context_for(cfg, sub, &sender, &references);
+        write_file(
+            &dir.join(format!("{}.xml", n.id())),
+            alert(n, &ctx).as_bytes(),
+        )?;
+        written += 1;
+    }
+    if unreadable > 0 {
+        eprintln!("warning: {unreadable} stored notices could not be read and were left out");
+    }
+    Ok(written)
 }

@@ -31,10 +31,7 @@ pub fn read_history(cfg: &Config) -> anyhow::Result<Vec<Message>> {
 type Instant = Option<DateTime<Utc>>;
 
 /// `--from`/`--to` as instants, checked.
-pub fn window(
-    from: Option<&str>,
-    to: Option<&str>,
-) -> anyhow::Result<(Instant, Instant)> {
+pub fn window(from: Option<&str>, to: Option<&str>) -> anyhow::Result<(Instant, Instant)> {
     let from = parse_instant("--from", from)?;
     let to = parse_instant("--to", to)?;
     if let (Some(f), Some(t)) = (from, to) {

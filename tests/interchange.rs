@@ -555,3 +555,210 @@ fn report_rows_match_an_independent_count_of_the_package() {
     // last heartbeat on day 10 at 06:00 to day 13 06:00), 4 species each.
     assert_eq!(zero_effort, 2 * 4);
 }
+
+/// `xmllint --noout --schema CAP-v1.2.xsd FILE...` (Debian libxml2-utils)
+/// against the test copy of the OASIS CAP 1.2 schema.
+fn xmllint(files: &[PathBuf]) -> Output {
+    Command::new("xmllint")
+        .arg("--noout")
+        .arg("--schema")
+        .arg(repo().join("tests/reference/cap-1.2/CAP-v1.2.xsd"))
+        .args(files)
+        .output()
+        .expect("xmllint (Debian package libxml2-utils): run tests/run-all.sh")
+}
+
+/// A paddock polygon with a hole (RFC 7946 [lon, lat]) near KB-03.
+const PADDOCK: &str = r#"{"type": "Polygon", "coordinates": [
+  [[148.12, -31.51], [148.16, -31.51], [148.16, -31.47], [148.12, -31.47], [148.12, -31.51]],
+  [[148.13, -31.50], [148.13, -31.49], [148.14, -31.49], [148.14, -31.50], [148.13, -31.50]]]}"#;
+
+#[test]
+fn cap_alerts_validate_against_the_xsd_in_files_and_on_the_webhook() {
+    let dir = tempfile::tempdir().unwrap();
+    let hook = crate::delivery::Sink::webhook(&dir.path().join("hook"), &[]);
+    let a = dir.path().join("a");
+    std::fs::create_dir_all(a.join("areas")).unwrap();
+    std::fs::write(a.join("areas/paddock.geojson"), PADDOCK).unwrap();
+    let hooked = SUBSCRIBERS.replacen(
+        "[[subscriber.watch]]",
+        &format!(
+            "webhook = {{ url = \"http://127.0.0.1:{}/in\", format = \"cap\" }}\nmqtt = {{ format = \"cap\" }}\n[[subscriber.watch]]",
+            hook.port
+        ),
+        1,
+    );
+    let subscribers = format!(
+        "{hooked}\n\
+         [[subscriber]]\nid = \"wattle\"\nname = \"Wattle Downs\"\nemail = \"wd@wattle.example\"\n\
+         area = {{ geojson = \"areas/paddock.geojson\", buffer_km = 1.5 }}\n\
+         [[subscriber.watch]]\nname = \"dogs\"\ntrigger = \"presence\"\nspecies = [\"Canis familiaris\"]\nurgent = true\nchannels = [\"email\"]\n"
+    );
+    let cfg_path = config(&a, &subscribers);
+    // Two dogs a day after t0: one at KB-03 (both areas), with hostile text
+    // from the message, and one at KB-02 that a person then retracts.
+    let t = t0() + Duration::days(1);
+    let mut msgs: Vec<Message> = (0..=48)
+        .flat_map(|h| {
+            ["KB-01", "KB-02", "KB-03", "KB-04"].map(|d| {
+                Message::Heartbeat(Heartbeat {
+                    deployment_id: d.into(),
+                    timestamp: t0() + Duration::hours(h),
+                    battery_percent: None,
+                    signal_dbm: None,
+                    images_since_last: None,
+                })
+            })
+        })
+        .collect();
+    let mut d1 = animal(
+        "d1".into(),
+        "KB-03",
+        t + Duration::hours(2),
+        "Canis familiaris",
+        2,
+    );
+    if let Message::Observation(o) = &mut d1 {
+        o.vernacular_name = Some("wild <dog> & \"co\" ]]> \u{1}".into());
+    }
+    msgs.push(d1);
+    msgs.push(animal(
+        "d2".into(),
+        "KB-02",
+        t + Duration::hours(5),
+        "Canis familiaris",
+        1,
+    ));
+    msgs.sort_by_key(time_of);
+    msgs.push(Message::Correction(Correction {
+        observation_id: "d2".into(),
+        deployment_id: "KB-02".into(),
+        scientific_name: None,
+        count: None,
+        observation_type: Some(ObservationType::Blank),
+    }));
+    build_store(&cfg_path, &msgs);
+
+    let caps = dir.path().join("cap");
+    let stdout = ok(&run(&["export", "-c", s(&cfg_path), "--cap", s(&caps)]));
+    let mut files: Vec<PathBuf> = std::fs::read_dir(&caps)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .collect();
+    files.sort();
+    // Stonecroft (9 km circle) covers KB-02 and KB-03: two presence alerts
+    // and a cancel; Wattle Downs' paddock (plus 1.5 km) covers KB-03 only.
+    assert_eq!(files.len(), 4, "{stdout} {files:?}");
+    let out = xmllint(&files);
+    assert!(
+        out.status.success(),
+        "CAP 1.2 XSD: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let texts: Vec<String> = files
+        .iter()
+        .map(|f| std::fs::read_to_string(f).unwrap())
+        .collect();
+    let all = texts.join("\n");
+    assert!(all.contains("<category>Env</category>"));
+    assert!(
+        all.contains("ild &lt;dog&gt; &amp; &quot;co&quot; ]]&gt;"),
+        "message text escaped: {all}"
+    );
+    assert!(!all.contains('\u{1}'));
+    assert!(
+        all.contains("Stonecroft &lt;&amp; Sons&gt;"),
+        "config text escaped"
+    );
+    // KB-03, 02:00 local on 2 June (AEST): CAP's date-time form.
+    assert!(
+        all.contains("<onset>2026-06-02T02:00:00+10:00</onset>"),
+        "{all}"
+    );
+    assert!(all.contains("<circle>-31.4963,148.0578 9</circle>"));
+    assert!(all.contains(
+        "<polygon>-31.51,148.12 -31.51,148.16 -31.47,148.16 -31.47,148.12 -31.51,148.12</polygon>"
+    ));
+    assert!(all.contains("holes are left out") && all.contains("1.5 km around it"));
+    let cancel = texts
+        .iter()
+        .find(|t| t.contains("<msgType>Cancel</msgType>"))
+        .expect("a cancel for the retraction");
+    let original = texts
+        .iter()
+        .find(|t| {
+            t.contains("<addresses>stonecroft</addresses>")
+                && t.contains("<circle>-31.49179,148.05781 0</circle>")
+                && t.contains("<msgType>Alert</msgType>")
+        })
+        .unwrap();
+    let id = original
+        .split("<identifier>")
+        .nth(1)
+        .unwrap()
+        .split('<')
+        .next()
+        .unwrap();
+    assert!(cancel.contains(&format!("<references>outrider@outrider.kellerby.example,{id},2026-06-02T05:00:00+10:00</references>")), "{cancel}");
+
+    // The XSD does catch a bad alert: a "Z" date-time.
+    let bad = dir.path().join("bad.xml");
+    std::fs::write(&bad, texts[0].replacen("+10:00</sent>", "Z</sent>", 1)).unwrap();
+    assert!(
+        !xmllint(&[bad]).status.success(),
+        "xmllint accepted a Z date-time"
+    );
+
+    // The webhook channel with format = "cap": the body the outbox sends,
+    // through the real sender to a real HTTP server.
+    let cfg = outrider::config::load(&cfg_path).unwrap();
+    let sub = &cfg.subscribers[0];
+    let db = Sqlite::open_read_only(&cfg.service.state_dir).unwrap();
+    let notice: String = db
+        .connection()
+        .query_row("SELECT notice FROM notices WHERE subscriber_id = 'stonecroft' AND disposition = 'sent' ORDER BY at LIMIT 1", [], |r| r.get(0))
+        .unwrap();
+    let n: outrider::notify::Notice = serde_json::from_str(&notice).unwrap();
+    let body = outrider::outbox::channel_body(&cfg, sub, &n, sub.webhook_format);
+    let request = outrider::deliver::OutgoingWebhook::to(
+        sub.webhook.as_ref().unwrap(),
+        n.id().as_str(),
+        body,
+        1_780_000_000,
+    )
+    .with_content_type(sub.webhook_format.content_type());
+    let sender = outrider::deliver::WebhookSender::new().unwrap();
+    tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap()
+        .block_on(sender.send(&request))
+        .unwrap();
+    let log = hook.log("requests.jsonl");
+    assert_eq!(log.len(), 1);
+    let ct: Vec<&str> = log[0]["headers"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|h| h[0].as_str().unwrap().eq_ignore_ascii_case("content-type"))
+        .map(|h| h[1].as_str().unwrap())
+        .collect();
+    assert_eq!(ct, ["application/xml; charset=utf-8"]);
+    use base64::Engine as _;
+    let got = base64::engine::general_purpose::STANDARD
+        .decode(log[0]["body_b64"].as_str().unwrap())
+        .unwrap();
+    let file = dir.path().join("hook.xml");
+    std::fs::write(&file, &got).unwrap();
+    let out = xmllint(&[file]);
+    assert!(
+        out.status.success(),
+        "webhook body: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // The MQTT channel's payload is the same document.
+    assert_eq!(
+        outrider::outbox::channel_body(&cfg, sub, &n, sub.mqtt_format),
+        got
+    );
+}
