@@ -762,3 +762,70 @@ fn cap_alerts_validate_against_the_xsd_in_files_and_on_the_webhook() {
         got
     );
 }
+
+/// The MQTT channel with `mqtt = { format = "cap" }` in the running daemon:
+/// a real Mosquitto, the detection published by paho-mqtt, the notice read
+/// back by mosquitto_sub, and the payload checked by xmllint.
+#[test]
+fn the_daemon_publishes_a_cap_alert_over_mqtt() {
+    use crate::util::{publish_corpus, write_config, write_corpus, Daemon, Mosquitto, Msg};
+    use outrider::clock::{Clock, SystemClock};
+    let dir = tempfile::tempdir().unwrap();
+    let mosquitto = Mosquitto::start(dir.path());
+    let extra = "[[subscriber]]\nid = \"stonecroft\"\nname = \"Stonecroft\"\narea = { lat = -31.4963, lon = 148.0578, radius_km = 2.0 }\nmqtt = { format = \"cap\" }\n[[subscriber.watch]]\nname = \"dogs\"\ntrigger = \"presence\"\nspecies = [\"Canis familiaris\"]\nchannels = [\"mqtt\"]\n";
+    let cfg = write_config(dir.path(), mosquitto.port, false, extra);
+    let mut sub = Command::new("mosquitto_sub")
+        .args([
+            "-h",
+            "127.0.0.1",
+            "-p",
+            &mosquitto.port.to_string(),
+            "-t",
+            "outrider/_notices/#",
+            "-C",
+            "1",
+            "-W",
+            "60",
+            "-q",
+            "1",
+        ])
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("mosquitto_sub (Debian package mosquitto-clients)");
+    let _daemon = Daemon::start(&cfg);
+    let at =
+        (SystemClock.now() - Duration::minutes(20)).with_timezone(&chrono_tz::Australia::Sydney);
+    let p = serde_json::json!({"observationID": "m1", "deploymentID": "KB-02", "eventStart": at.to_rfc3339(), "observationType": "animal", "scientificName": "Canis familiaris", "vernacularName": "wild dog", "classificationProbability": 0.95});
+    let corpus = dir.path().join("c.jsonl");
+    write_corpus(
+        &corpus,
+        &[Msg {
+            topic: "outrider/KB-02/observation".into(),
+            payload: p.to_string().into_bytes(),
+        }],
+    );
+    publish_corpus(mosquitto.port, &corpus, 0, "cappublisher");
+    // mosquitto_sub subscribed before the daemon started; it exits after
+    // one message (-C 1), or fails after 60 s (-W 60).
+    crate::util::wait_for(
+        std::time::Duration::from_secs(70),
+        "the notice on MQTT",
+        || sub.try_wait().unwrap().map(|_| ()),
+    );
+    let mut payload = Vec::new();
+    std::io::Read::read_to_end(sub.stdout.as_mut().unwrap(), &mut payload).unwrap();
+    let file = dir.path().join("mqtt.xml");
+    std::fs::write(&file, &payload).unwrap();
+    let text = String::from_utf8_lossy(&payload);
+    assert!(
+        text.contains("<addresses>stonecroft</addresses>")
+            && text.contains("<event>Animal detected</event>"),
+        "{text}"
+    );
+    let out = xmllint(&[file]);
+    assert!(
+        out.status.success(),
+        "MQTT payload: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
