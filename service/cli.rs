@@ -127,6 +127,80 @@ pub enum Command {
         #[arg(long, value_name = "N", default_value_t = 256, value_parser = clap::value_parser!(i32).range(1..))]
         pages_per_step: i32,
     },
+    /// Write what the store holds in open-standard formats: a Camtrap DP
+    /// data package, and/or the sent notices as CAP 1.2 alerts. Reads the
+    /// store only; safe while the daemon runs.
+    Export(ExportArgs),
+    /// Load a Camtrap DP data package's deployments and observations into
+    /// the store as history (for baselines). Stop the daemon first; it
+    /// reads history when it starts.
+    Import(ImportArgs),
+    /// Print a CSV report of independent events, camera-nights and RAI per
+    /// site, species and period. Reads the store only.
+    Report(ReportArgs),
+}
+
+#[derive(Debug, Args)]
+#[command(group(clap::ArgGroup::new("what").required(true).multiple(true).args(["camtrap_dp", "cap"])))]
+pub struct ExportArgs {
+    /// The configuration file (TOML).
+    #[arg(short = 'c', long = "config", value_name = "FILE")]
+    pub config: PathBuf,
+    /// Write a Camtrap DP 1.0.2 data package into DIR (datapackage.json,
+    /// deployments.csv, media.csv, observations.csv, heartbeats.csv).
+    #[arg(long = "camtrap-dp", value_name = "DIR")]
+    pub camtrap_dp: Option<PathBuf>,
+    /// Write each sent notice as a CAP 1.2 alert, one XML file each, into DIR.
+    #[arg(long, value_name = "DIR")]
+    pub cap: Option<PathBuf>,
+    /// Only what happened at or after this instant (RFC 3339).
+    #[arg(long, value_name = "T")]
+    pub from: Option<String>,
+    /// Only what happened before this instant (RFC 3339).
+    #[arg(long, value_name = "T")]
+    pub to: Option<String>,
+    /// Write into a folder that is not empty (files of the same names are
+    /// replaced).
+    #[arg(long)]
+    pub force: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct ImportArgs {
+    /// The configuration file (TOML).
+    #[arg(short = 'c', long = "config", value_name = "FILE")]
+    pub config: PathBuf,
+    /// The Camtrap DP data package: a folder holding datapackage.json.
+    #[arg(long = "camtrap-dp", value_name = "DIR")]
+    pub camtrap_dp: PathBuf,
+}
+
+/// The length of a report's periods.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum ReportPeriod {
+    Day,
+    Week,
+    Month,
+}
+
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// The configuration file (TOML).
+    #[arg(short = 'c', long = "config", value_name = "FILE")]
+    pub config: PathBuf,
+    /// One row per site and species for each local day, ISO week or
+    /// calendar month.
+    #[arg(long, value_enum, value_name = "PERIOD")]
+    pub by: ReportPeriod,
+    /// Start of the report (RFC 3339); default: the first deploymentStart.
+    #[arg(long, value_name = "T")]
+    pub from: Option<String>,
+    /// End of the report, exclusive (RFC 3339); default: now.
+    #[arg(long, value_name = "T")]
+    pub to: Option<String>,
+    /// Write the CSV to FILE instead of stdout.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
 }
 
 #[derive(Debug, Args)]
@@ -134,8 +208,10 @@ pub struct ReplayArgs {
     /// The configuration file (TOML).
     #[arg(short = 'c', long = "config", value_name = "FILE")]
     pub config: PathBuf,
-    /// The archive: a CSV with Camtrap DP observation columns, or JSON lines
-    /// of messages ({"topic": ..., "payload": {...}}).
+    /// The archive: a CSV with Camtrap DP observation columns, JSON lines
+    /// of messages ({"topic": ..., "payload": {...}}), or a Camtrap DP data
+    /// package (a folder with datapackage.json: its observations, and its
+    /// heartbeats when it has them and --heartbeats is not given).
     #[arg(long, value_name = "ARCHIVE")]
     pub observations: PathBuf,
     /// Heartbeats (JSON lines of messages, or a CSV with deploymentID and

@@ -21,6 +21,8 @@
 //!
 //! - [`engine`]: the one core the daemon and replay both run: messages in,
 //!   event changes and notice decisions out.
+//! - [`interchange`]: Camtrap DP packages, CAP 1.2 alerts and CSV reports
+//!   (formats only: data in, bytes out).
 //!
 //! I/O shells, thin, wired together only in [`app`]:
 //! - [`ingest::mqtt`]: the MQTT client loop (QoS 1, persistent session,
@@ -37,6 +39,9 @@
 //! - [`outbox`]: sends due notices and digests, per-channel concurrency,
 //!   back-off, each outcome recorded at once.
 //! - [`tools`]: `outrider digest` (preview) and `outrider send-test`.
+//! - [`export`], [`import`], [`report`]: `outrider export` (Camtrap DP,
+//!   CAP), `outrider import` (Camtrap DP) and `outrider report` (CSV), the
+//!   shells over the pure formats in [`interchange`].
 
 pub mod activity;
 pub mod app;
@@ -50,13 +55,17 @@ pub mod deliver;
 pub mod demo;
 pub mod digest;
 pub mod engine;
+pub mod export;
 pub mod geo;
+pub mod import;
 pub mod ingest;
+pub mod interchange;
 pub mod model;
 pub mod notify;
 pub mod outbox;
 pub mod pipeline;
 pub mod replay;
+pub mod report;
 pub mod status;
 pub mod store;
 pub mod telemetry;

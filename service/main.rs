@@ -160,6 +160,21 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
             let cfg = load(&a.config)?;
             return outrider::replay::run(&cfg, &a);
         }
+        Command::Export(a) => {
+            let cfg = load(&a.config)?;
+            let now = outrider::status::effective_now(&cfg.service.state_dir, SystemClock.now());
+            outrider::export::run(&cfg, &a, now)?;
+        }
+        Command::Import(a) => {
+            let cfg = load(&a.config)?;
+            let now = outrider::status::effective_now(&cfg.service.state_dir, SystemClock.now());
+            return outrider::import::run(&cfg, &a, now);
+        }
+        Command::Report(a) => {
+            let cfg = load(&a.config)?;
+            let now = outrider::status::effective_now(&cfg.service.state_dir, SystemClock.now());
+            outrider::report::run(&cfg, &a, now)?;
+        }
         Command::Backup {
             config,
             state_dir,

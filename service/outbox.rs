@@ -1,6 +1,7 @@
 //! The outbox worker: takes due deliveries from the store, renders and
 //! sends each on its channel (email through SMTP or into the mail folder,
-//! signed webhook, MQTT), and records the outcome at once.
+//! signed webhook, MQTT; webhook and MQTT as the notice's JSON line or, per
+//! subscriber, as a CAP 1.2 alert), and records the outcome at once.
 //!
 //! Retries follow [`crate::notify::RetrySchedule`] (1 min doubling to 1 h,
 //! given up 24 h after the first attempt); a permanent error (SMTP 5xx,
@@ -425,6 +426,25 @@ async fn send_digest(
     send_email(route, &email).await
 }
 
+/// What a webhook or MQTT notice carries: the notice's JSON line, or a
+/// CAP 1.2 alert (without `references`: the live path does not look the
+/// earlier alert up; its `incidents` ties a follow-up to it).
+pub fn channel_body(
+    cfg: &Config,
+    sub: &Subscriber,
+    n: &Notice,
+    format: crate::config::NoticeFormat,
+) -> Vec<u8> {
+    match format {
+        crate::config::NoticeFormat::Json => n.replay_line().to_string().into_bytes(),
+        crate::config::NoticeFormat::Cap => {
+            let sender = crate::interchange::cap::sender_for(&cfg.service.public_url);
+            let ctx = crate::interchange::cap::context_for(cfg, Some(sub), &sender, &[]);
+            crate::interchange::cap::alert(n, &ctx).into_bytes()
+        }
+    }
+}
+
 fn subscriber<'c>(cfg: &'c Config, n: &Notice) -> Option<&'c Subscriber> {
     cfg.subscribers.iter().find(|s| s.id == n.subscriber_id)
 }
@@ -443,7 +463,6 @@ async fn send(
             n.subscriber_id
         )));
     };
-    let body = n.replay_line().to_string().into_bytes();
     match d.channel.as_str() {
         "email" => {
             let (Some(route), Some(to)) = (&ch.email, &sub.email) else {
@@ -484,13 +503,17 @@ async fn send(
             let (Some(sender), Some(hook)) = (&ch.webhook, &sub.webhook) else {
                 return Err(DeliveryError::permanent("no webhook for this subscriber"));
             };
+            let format = sub.webhook_format;
             sender
-                .send(&OutgoingWebhook::to(
-                    hook,
-                    n.id().as_str(),
-                    body,
-                    now.timestamp(),
-                ))
+                .send(
+                    &OutgoingWebhook::to(
+                        hook,
+                        n.id().as_str(),
+                        channel_body(cfg, sub, n, format),
+                        now.timestamp(),
+                    )
+                    .with_content_type(format.content_type()),
+                )
                 .await
         }
         "mqtt" => {
@@ -502,7 +525,7 @@ async fn send(
                     format!("{prefix}/_notices/{}", sub.id),
                     rumqttc::QoS::AtLeastOnce,
                     false,
-                    body,
+                    channel_body(cfg, sub, n, sub.mqtt_format),
                 )
                 .await
                 .map_err(|e| DeliveryError::retriable(format!("MQTT publish: {e}")))

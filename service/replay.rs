@@ -60,7 +60,18 @@ pub fn run(cfg: &Config, args: &ReplayArgs) -> anyhow::Result<ExitCode> {
     let facts = DecodeFacts::from_config(cfg);
     let mut records: Vec<Record> = Vec::new();
     let mut files = Vec::new();
-    for path in std::iter::once(&args.observations).chain(args.heartbeats.as_ref()) {
+    // A Camtrap DP package folder: its observations, and its heartbeats
+    // unless --heartbeats names others.
+    let (observations, heartbeats) = if args.observations.is_dir() {
+        let pkg = crate::import::open_package(&args.observations)?;
+        for w in &pkg.warnings {
+            eprintln!("warning: {w}");
+        }
+        (pkg.observations, args.heartbeats.clone().or(pkg.heartbeats))
+    } else {
+        (args.observations.clone(), args.heartbeats.clone())
+    };
+    for path in std::iter::once(&observations).chain(heartbeats.as_ref()) {
         let total = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
         let label = format!(
             "reading {}",
@@ -140,7 +151,8 @@ pub fn run(cfg: &Config, args: &ReplayArgs) -> anyhow::Result<ExitCode> {
     }
 }
 
-fn parse_instant(flag: &str, value: Option<&str>) -> anyhow::Result<Option<DateTime<Utc>>> {
+/// Parses a `--from`/`--to` value: RFC 3339 with an offset.
+pub fn parse_instant(flag: &str, value: Option<&str>) -> anyhow::Result<Option<DateTime<Utc>>> {
     let Some(v) = value else { return Ok(None) };
     match crate::config::sites::parse_datetime(v) {
         Some(t) => Ok(Some(t)),

@@ -16,6 +16,8 @@ missing=()
 [ -x /usr/sbin/mosquitto ] || command -v mosquitto >/dev/null 2>&1 || missing+=(mosquitto)
 command -v mosquitto_pub >/dev/null 2>&1 || missing+=(mosquitto-clients)
 if ! python3 -c 'import venv, ensurepip' >/dev/null 2>&1; then missing+=(python3-venv); fi
+# xmllint checks CAP 1.2 alerts against the XSD (tests/interchange.rs).
+command -v xmllint >/dev/null 2>&1 || missing+=(libxml2-utils)
 # systemd-analyze, systemd-sysusers, systemd-tmpfiles check deploy/ (tests/deploy.rs).
 command -v systemd-analyze >/dev/null 2>&1 || missing+=(systemd)
 if [ ${#missing[@]} -gt 0 ]; then

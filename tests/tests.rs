@@ -10,6 +10,7 @@ mod delivery;
 mod deploy;
 mod digest;
 mod ingest;
+mod interchange;
 mod notices;
 mod replay;
 mod util;

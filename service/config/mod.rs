@@ -189,6 +189,35 @@ pub struct Webhook {
     pub secret: Option<Secret>,
 }
 
+/// How a notice is written on the webhook and MQTT channels (subscriber
+/// keys `webhook.format` and `mqtt.format`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum NoticeFormat {
+    /// The notice's JSON line ([`crate::notify::Notice::replay_line`]).
+    #[default]
+    Json,
+    /// A CAP 1.2 alert, XML ([`crate::interchange::cap`]).
+    Cap,
+}
+
+impl NoticeFormat {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Json => "json",
+            Self::Cap => "cap",
+        }
+    }
+
+    /// The `Content-Type` of a webhook body. CAP has no media type
+    /// registered for general use, so it goes as XML (RFC 7303).
+    pub fn content_type(self) -> &'static str {
+        match self {
+            Self::Json => "application/json",
+            Self::Cap => "application/xml; charset=utf-8",
+        }
+    }
+}
+
 #[derive(Debug, Clone)]
 pub struct Subscriber {
     pub id: String,
@@ -204,6 +233,10 @@ pub struct Subscriber {
     /// The area, built (GeoJSON read and checked).
     pub area: Area,
     pub webhook: Option<Webhook>,
+    /// What the webhook sends (`webhook.format`, default json).
+    pub webhook_format: NoticeFormat,
+    /// What an MQTT notice carries (`mqtt = { format = "cap" }`, default json).
+    pub mqtt_format: NoticeFormat,
     pub watches: Vec<Watch>,
 }
 
@@ -1145,6 +1178,7 @@ const SUBSCRIBER_KEYS: &[&str] = &[
     "max_per_hour",
     "area",
     "webhook",
+    "mqtt",
     "watch",
 ];
 
@@ -1472,10 +1506,12 @@ fn read_subscriber(
     let area = area_spec
         .as_ref()
         .and_then(|a| build_area(w, a, area_at, &t.key_path("area"), files));
+    let mut webhook_format = NoticeFormat::Json;
     let webhook = w.table(t, "webhook").and_then(|mut h| {
         let url = w.req_str(&mut h, "url", "the address outrider POSTs each notice to");
         let secret = read_secret(w, &mut h, "secret", files);
-        w.finish(h, &["url", "secret_env", "secret_file"]);
+        webhook_format = read_notice_format(w, &mut h);
+        w.finish(h, &["url", "secret_env", "secret_file", "format"]);
         let url = url?;
         if url.value.starts_with("http://") || url.value.starts_with("https://") {
             Some(Webhook {
@@ -1492,6 +1528,14 @@ fn read_subscriber(
             None
         }
     });
+    let mqtt_format = w
+        .table(t, "mqtt")
+        .map(|mut m| {
+            let f = read_notice_format(w, &mut m);
+            w.finish(m, &["format"]);
+            f
+        })
+        .unwrap_or_default();
     let watch_tables = w.tables(t, "watch");
     let mut watches = Vec::new();
     for mut wt in watch_tables {
@@ -1525,8 +1569,30 @@ fn read_subscriber(
         area_spec,
         area,
         webhook,
+        webhook_format,
+        mqtt_format,
         watches,
     })
+}
+
+/// A channel table's `format` key: `json` (default) or `cap`.
+fn read_notice_format(w: &mut Walker<'_, '_>, t: &mut Table<'_, '_>) -> NoticeFormat {
+    match w.str(t, "format") {
+        None => NoticeFormat::Json,
+        Some(f) => match f.value.as_str() {
+            "json" => NoticeFormat::Json,
+            "cap" => NoticeFormat::Cap,
+            other => {
+                w.error(
+                    &f.span,
+                    &t.key_path("format"),
+                    format!("`{other}` is not a notice format"),
+                    Some("json (the notice as a JSON object, the default) or cap (a CAP 1.2 alert in XML)".into()),
+                );
+                NoticeFormat::Json
+            }
+        },
+    }
 }
 
 fn read_watch(

@@ -410,3 +410,48 @@ fn hours_seasons_and_quiet_hours_use_the_calendar_parsers() {
         assert!(errs[0].hint.is_some());
     }
 }
+
+#[test]
+fn webhook_and_mqtt_formats() {
+    // The CAP format option (docs/interchange.md): json by default, cap on
+    // request, anything else an error at its file:line.
+    let sub = |keys: &str| {
+        format!("[sites]\nfile = \"sites.csv\"\n[[subscriber]]\nid = \"x\"\narea = \"all\"\n{keys}\n[[subscriber.watch]]\ntrigger = \"silence\"\nchannels = [\"webhook\", \"mqtt\"]\n")
+    };
+    let cfg = parse_with(
+        &sub("webhook = { url = \"https://hooks.stonecroft.example/in\", format = \"cap\" }\nmqtt = { format = \"cap\" }"),
+        &[],
+    )
+    .unwrap();
+    assert_eq!(cfg.subscribers[0].webhook_format, NoticeFormat::Cap);
+    assert_eq!(cfg.subscribers[0].mqtt_format, NoticeFormat::Cap);
+    let cfg = parse_with(
+        &sub("webhook = { url = \"https://hooks.stonecroft.example/in\" }"),
+        &[],
+    )
+    .unwrap();
+    assert_eq!(cfg.subscribers[0].webhook_format, NoticeFormat::Json);
+    assert_eq!(cfg.subscribers[0].mqtt_format, NoticeFormat::Json);
+    let errs = errors(&sub(
+        "webhook = { url = \"https://hooks.stonecroft.example/in\", format = \"xml\" }\nmqtt = { format = \"cap\", topic = \"x\" }",
+    ));
+    assert_eq!(errs.len(), 2, "{errs:?}");
+    assert_eq!(
+        (errs[0].line, errs[0].key.as_str()),
+        (6, "subscriber[1].webhook.format"),
+        "{}",
+        errs[0]
+    );
+    assert!(
+        errs[0].message.contains("`xml` is not a notice format"),
+        "{}",
+        errs[0]
+    );
+    assert!(errs[0].hint.as_deref().unwrap_or("").contains("cap"));
+    assert_eq!(errs[1].line, 7, "{}", errs[1]);
+    assert!(
+        errs[1].key.ends_with("mqtt.topic") && errs[1].message.contains("unknown key"),
+        "{}",
+        errs[1]
+    );
+}

@@ -8,7 +8,8 @@
 //! live in [`crate::notify::token`]; the status-code table in
 //! [`crate::notify::classify_http`]; the time of signing is passed in.
 //!
-//! Each request carries `Content-Type: application/json`,
+//! Each request carries `Content-Type: application/json` (or XML for a
+//! subscriber whose webhook has `format = "cap"`),
 //! `Idempotency-Key: <delivery id>` (the same on every retry) and, when the
 //! subscriber has a secret, `Outrider-Timestamp` and `Outrider-Signature`.
 //! The client has a 10 s limit for the whole exchange, follows no redirect
@@ -43,8 +44,11 @@ pub struct OutgoingWebhook {
     /// The delivery id; the same on every attempt so the receiver can drop
     /// repeats. Visible ASCII only.
     pub idempotency_key: String,
-    /// The JSON body, sent and signed byte for byte.
+    /// The body, sent and signed byte for byte.
     pub body: Vec<u8>,
+    /// Its `Content-Type`: `application/json` for the notice's JSON line,
+    /// XML for a CAP alert ([`crate::config::NoticeFormat::content_type`]).
+    pub content_type: &'static str,
     /// Unix seconds of the attempt (the caller's clock): the signed
     /// timestamp.
     pub timestamp: i64,
@@ -58,15 +62,22 @@ impl OutgoingWebhook {
             secret: hook.secret.clone(),
             idempotency_key: idempotency_key.to_owned(),
             body,
+            content_type: "application/json",
             timestamp,
         }
+    }
+
+    /// The same request with another `Content-Type`.
+    pub fn with_content_type(mut self, content_type: &'static str) -> Self {
+        self.content_type = content_type;
+        self
     }
 
     /// The header fields this request carries besides those of HTTP itself
     /// (Host, Content-Length, User-Agent), in order.
     pub fn headers(&self) -> Vec<(&'static str, String)> {
         let mut h = vec![
-            ("Content-Type", "application/json".to_owned()),
+            ("Content-Type", self.content_type.to_owned()),
             (WEBHOOK_IDEMPOTENCY_HEADER, self.idempotency_key.clone()),
         ];
         if let Some(secret) = &self.secret {
@@ -194,6 +205,7 @@ mod tests {
             secret: Some(Secret::new("kellerby-hook-secret")),
             idempotency_key: "2b65300baab149c9cfd5913a126e242d".into(),
             body: body.to_vec(),
+            content_type: "application/json",
             timestamp: 1752545700,
         };
         // docs/notices.md §6 worked example (computed there with Python's

@@ -132,21 +132,12 @@ impl Engine {
 
     pub fn with_options(cfg: Arc<Config>, options: Options) -> Self {
         let rules = RuleBook::compile(&cfg);
-        let silence = if options.assume_operating {
-            // Up from deploymentStart to deploymentEnd without signs of life.
-            Duration::days(365 * 200)
-        } else {
-            Duration::seconds((cfg.sites.silence_hours * 3600.0) as i64).max(Duration::seconds(1))
-        };
+        let silence = effort_silence(&cfg, options);
         let uptime = cfg
             .sites
             .sites
             .iter()
-            .map(|s| {
-                Uptime::new(s.deployment_start, s.deployment_end, silence)
-                    .or_else(|_| Uptime::new(s.deployment_start, None, silence))
-                    .unwrap_or_else(|_| unreachable_uptime(s.deployment_start))
-            })
+            .map(|s| site_uptime(s, silence))
             .collect();
         let last_sign = cfg.sites.sites.iter().map(|s| s.deployment_start).collect();
         Engine {
@@ -530,6 +521,23 @@ impl Engine {
         spike_test(&input, &params).ok()
     }
 
+    /// The baseline the spike test would use at `deployment_id` for
+    /// `species` over the `window_hours` ending at `at`: the site's history,
+    /// the regional prior and the gamma posterior, with the count and
+    /// effort of that window. `None` for an unknown deployment or a window
+    /// with no effort. (Thresholds are the config's defaults; the figures do
+    /// not depend on them.)
+    pub fn baseline(
+        &mut self,
+        deployment_id: &str,
+        species: &str,
+        at: DateTime<Utc>,
+        window_hours: u32,
+    ) -> Option<SpikeEvidence> {
+        let site = self.rules.site_index(deployment_id)?;
+        self.spike_evidence(site, species, at, window_hours, 3.0, 3)
+    }
+
     /// Events per camera-night of `species` over all sites in the window,
     /// cached per window-end hour.
     fn regional_rate(
@@ -904,6 +912,59 @@ impl Engine {
             .retain(|_, v| v.iter().any(|(at, _)| *at >= cutoff));
         self.policy.prune(now);
     }
+}
+
+/// The silence limit effort is counted with: the sites' `silence_hours`,
+/// or, with [`Options::assume_operating`], one so long that a deployment is
+/// up from deploymentStart to deploymentEnd without signs of life.
+pub fn effort_silence(cfg: &Config, options: Options) -> Duration {
+    if options.assume_operating {
+        Duration::days(365 * 200)
+    } else {
+        Duration::seconds((cfg.sites.silence_hours * 3600.0) as i64).max(Duration::seconds(1))
+    }
+}
+
+/// A deployment's empty uptime ledger, as the engine builds it (the
+/// interchange formats count effort with the same one).
+pub fn site_uptime(site: &crate::config::Site, silence: Duration) -> Uptime {
+    Uptime::new(site.deployment_start, site.deployment_end, silence)
+        .or_else(|_| Uptime::new(site.deployment_start, None, silence))
+        .unwrap_or_else(|_| unreachable_uptime(site.deployment_start))
+}
+
+/// The independent events of a stored history (observations, then the
+/// corrections in arrival order, as [`crate::store::Backend::history`]
+/// returns them), read the way the engine reads them: animal observations
+/// with a scientific name are triggers, corrections go through [`correct`].
+/// Shared by `outrider rebuild`, the exports and the reports.
+pub fn ledger_from_history<'a>(
+    history: impl IntoIterator<Item = &'a Message>,
+    interval: Duration,
+) -> EventLedger {
+    let mut ledger = EventLedger::new(interval);
+    for m in history {
+        match m {
+            Message::Observation(o) => {
+                if let (ObservationType::Animal, Some(name)) =
+                    (o.observation_type, &o.scientific_name)
+                {
+                    ledger.insert(Trigger {
+                        observation_id: o.observation_id.clone(),
+                        deployment_id: o.deployment_id.clone(),
+                        scientific_name: name.clone(),
+                        at: o.event_start,
+                        count: o.count,
+                    });
+                }
+            }
+            Message::Correction(c) => {
+                correct(&mut ledger, c);
+            }
+            Message::Heartbeat(_) => {}
+        }
+    }
+    ledger
 }
 
 /// Applies a correction to a ledger: a type other than `animal` retracts

@@ -242,6 +242,33 @@ pub fn render_email(notice: &Notice, ctx: &EmailContext<'_>) -> RenderedEmail {
     }
 }
 
+/// The words of a notice without the email around them: the subject, the
+/// headline and the facts, cleaned with [`header_safe`] and not escaped.
+/// Other formats (CAP alerts) say the same thing as the email with these.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct NoticeWords {
+    pub subject: String,
+    pub headline: String,
+    pub facts: Vec<String>,
+}
+
+/// [`NoticeWords`] of `notice` in `time_zone`; `chance_in_words` as in
+/// [`EmailContext`].
+pub fn notice_words(notice: &Notice, time_zone: Tz, chance_in_words: Option<&str>) -> NoticeWords {
+    let ctx = EmailContext {
+        time_zone,
+        chance_in_words,
+        status_url: None,
+        unsubscribe_url: "",
+    };
+    let m = Message::compose(notice, &ctx);
+    NoticeWords {
+        subject: header_safe(&m.subject),
+        headline: m.headline,
+        facts: m.facts,
+    }
+}
+
 /// The sentences of one notice, already cleaned, not yet escaped.
 struct Message {
     subject: String,

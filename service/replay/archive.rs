@@ -189,6 +189,17 @@ const HEARTBEAT_COLUMNS: [(&str, Kind); 5] = [
 ];
 const HEARTBEAT_REQUIRED: [&str; 2] = ["deploymentID", "timestamp"];
 
+/// A record the decoder refused, with what the daemon would have received
+/// (kept by [`read_keeping`] for `outrider import`, which stores it as a
+/// rejection like the daemon does).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct RefusedRecord {
+    pub line: u64,
+    pub topic: String,
+    pub payload: Vec<u8>,
+    pub rejection: Rejection,
+}
+
 /// Reads `path`, appending what it keeps to `out` in file order.
 /// `progress` is told the bytes read so far, now and then.
 pub fn read(
@@ -196,6 +207,19 @@ pub fn read(
     facts: &DecodeFacts,
     filter: TimeFilter,
     out: &mut Vec<Record>,
+    progress: &mut dyn FnMut(u64),
+) -> Result<FileStats, ArchiveError> {
+    read_keeping(path, facts, filter, out, None, progress)
+}
+
+/// [`read`], also keeping every record the decoder refused (with its topic
+/// and payload) in `refused` when given.
+pub fn read_keeping(
+    path: &Path,
+    facts: &DecodeFacts,
+    filter: TimeFilter,
+    out: &mut Vec<Record>,
+    refused: Option<&mut Vec<RefusedRecord>>,
     progress: &mut dyn FnMut(u64),
 ) -> Result<FileStats, ArchiveError> {
     let io = |source| ArchiveError::Io {
@@ -228,6 +252,7 @@ pub fn read(
         out,
         last_time: None,
         pending: Vec::new(),
+        refused,
     };
     // Room for the records up front, so a vector of a million messages is
     // not copied over at every doubling. Lines are rarely shorter than
@@ -254,9 +279,24 @@ struct Sink<'o> {
     last_time: Option<DateTime<Utc>>,
     /// Corrections read before any timed record, with their lines.
     pending: Vec<(Message, u64)>,
+    /// Where refused records go, when the caller keeps them.
+    refused: Option<&'o mut Vec<RefusedRecord>>,
 }
 
 impl Sink<'_> {
+    /// Counts a refusal and, when the caller keeps them, keeps the record.
+    fn refuse(&mut self, line: u64, topic: &str, payload: &[u8], r: Rejection) {
+        if let Some(keep) = self.refused.as_deref_mut() {
+            keep.push(RefusedRecord {
+                line,
+                topic: topic.to_string(),
+                payload: payload.to_vec(),
+                rejection: r.clone(),
+            });
+        }
+        self.stats.reject(line, r);
+    }
+
     /// Keeps `message` at `at` when the time filter does; true if kept.
     fn push(&mut self, at: DateTime<Utc>, message: Message) -> bool {
         if self.filter.keeps(at) {
@@ -430,7 +470,7 @@ fn read_json_lines(
             Ok(m) => {
                 sink.accept(line_no, m, received_at);
             }
-            Err(r) => sink.stats.reject(line_no, r),
+            Err(r) => sink.refuse(line_no, &parsed.topic, payload, r),
         }
     }
     progress(bytes);
@@ -596,8 +636,17 @@ fn read_csv(
                 continue;
             }
             let Ok(text) = std::str::from_utf8(field) else {
-                sink.stats.reject(
+                // What is kept is the row itself, fields joined by commas.
+                let raw = record.iter().collect::<Vec<_>>().join(&b","[..]);
+                let dep = dep_col
+                    .and_then(|i| record.get(i))
+                    .map(String::from_utf8_lossy)
+                    .unwrap_or_default();
+                let topic = format!("{}/{dep}/{kind_segment}", ctx.topic_prefix);
+                sink.refuse(
                     line,
+                    &topic,
+                    &raw,
                     Rejection::new(
                         RejectReason::InvalidUtf8,
                         format!("column {k} is not UTF-8"),
@@ -626,7 +675,7 @@ fn read_csv(
                     media_rows.push(index);
                 }
             }
-            Err(r) => sink.stats.reject(line, r),
+            Err(r) => sink.refuse(line, &topic, &payload, r),
         }
     }
     progress(rdr.position().byte());

@@ -573,32 +573,12 @@ impl Sqlite {
         &mut self,
         interval: chrono::Duration,
     ) -> Result<(usize, usize), StoreError> {
-        use crate::activity::{EventLedger, Trigger};
         let history = load_history(&self.conn, DateTime::<Utc>::MIN_UTC)?;
-        let mut ledger = EventLedger::new(interval);
-        let mut read = 0;
-        for m in &history {
-            match m {
-                Message::Observation(o) => {
-                    read += 1;
-                    if let (ObservationType::Animal, Some(name)) =
-                        (o.observation_type, &o.scientific_name)
-                    {
-                        ledger.insert(Trigger {
-                            observation_id: o.observation_id.clone(),
-                            deployment_id: o.deployment_id.clone(),
-                            scientific_name: name.clone(),
-                            at: o.event_start,
-                            count: o.count,
-                        });
-                    }
-                }
-                Message::Correction(c) => {
-                    crate::engine::correct(&mut ledger, c);
-                }
-                Message::Heartbeat(_) => {}
-            }
-        }
+        let read = history
+            .iter()
+            .filter(|m| matches!(m, Message::Observation(_)))
+            .count();
+        let ledger = crate::engine::ledger_from_history(&history, interval);
         let tx = self.conn.transaction()?;
         tx.execute("DELETE FROM events", [])?;
         let mut written = 0;
