@@ -52,7 +52,8 @@ def wait_file_line(path, needle, limit=60):
         if os.path.exists(path) and needle in open(path, errors="replace").read():
             return
         time.sleep(0.1)
-    sys.exit(f"timed out waiting for {needle!r} in {path}")
+    tail = open(path, errors="replace").read()[-2000:] if os.path.exists(path) else ""
+    sys.exit(f"timed out waiting for {needle!r} in {path}:\n{tail}")
 
 
 def percentile(xs, q):
@@ -91,7 +92,7 @@ state_dir = "state"
 timezone = "Australia/Sydney"
 [mqtt]
 url = "mqtt://127.0.0.1:{mq_port}"
-client_id = "outrider-latency"
+client_id = "outriderlatency"
 [sites]
 file = "sites.csv"
 [smtp]
@@ -103,7 +104,7 @@ from = "outrider <notices@kellerby.example>"
 id = "probe"
 name = "Probe"
 email = "probe@kellerby.example"
-max_per_hour = 100000
+max_per_hour = 10000
 area = {{ sites = ["KB-01"] }}
   [[subscriber.watch]]
   name = "dogs"
