@@ -2,12 +2,19 @@
 //! sends each on its channel (email through SMTP or into the mail folder,
 //! signed webhook, MQTT), and records the outcome at once.
 //!
-//! Retries follow [`crate::notify::RetrySchedule`] (1 min doubling to 1 h,
-//! given up 24 h after the first attempt); a permanent error (SMTP 5xx,
-//! HTTP 4xx other than 408/429) fails the delivery at once. A delivery is
-//! recorded as sent right after the server accepts it, before anything
-//! else; only a crash in between can send it a second time, and then with
-//! the same Message-ID / idempotency key, so the receiver can tell.
+//! Retries follow [`crate::notify::RetrySchedule`] as `[delivery]` sets it
+//! (by default 1 min doubling to 1 h, given up 24 h after the first
+//! attempt); a permanent error (SMTP 5xx, HTTP 4xx other than 408/429)
+//! fails the delivery at once.
+//!
+//! Each attempt is marked as under way in the store before it starts, and
+//! its outcome is recorded right after the server answers, before
+//! anything else. Only a crash between the server's acceptance and that
+//! record can send a notice a second time; then the mark is still there at
+//! the next start, the repeat is logged as such, and it carries the same
+//! Message-ID / idempotency key, so the receiver can tell. (No protocol
+//! lets a sender ask an SMTP server whether it already took a message, so
+//! exactly once cannot be promised; docs/reliability.md.)
 
 use crate::clock::Clock;
 use crate::config::{Config, Subscriber};
@@ -96,6 +103,15 @@ pub fn link_key(state_dir: &Path) -> anyhow::Result<TokenKey> {
     Ok(TokenKey::new(bytes)?)
 }
 
+/// The retry schedule `[delivery]` asks for.
+pub fn schedule(d: &crate::config::Delivery) -> RetrySchedule {
+    RetrySchedule {
+        base: Duration::seconds(i64::from(d.retry_first_seconds)),
+        cap: Duration::seconds(i64::from(d.retry_max_seconds)),
+        give_up_after: Duration::hours(i64::from(d.give_up_hours)),
+    }
+}
+
 /// Runs until `stop` is cancelled, checking for due deliveries every `every`.
 pub async fn run(
     store: Store,
@@ -106,7 +122,19 @@ pub async fn run(
     every: std::time::Duration,
     stop: CancellationToken,
 ) {
-    let schedule = RetrySchedule::default();
+    let schedule = schedule(&cfg.delivery);
+    // Attempts a previous process started but never finished: their
+    // outcome is unknown, so they are sent again (same Message-ID and
+    // idempotency key).
+    match store.with(|b| b.reclaim_interrupted()).await {
+        Ok(Ok(list)) => {
+            for (notice, channel) in list {
+                tracing::warn!(%notice, %channel, "A delivery was under way when outrider last stopped; sending it again with the same Message-ID or idempotency key");
+            }
+        }
+        Ok(Err(error)) => tracing::warn!(%error, "Could not check for interrupted deliveries"),
+        Err(_) => return,
+    }
     loop {
         tokio::select! {
             _ = stop.cancelled() => break,
@@ -125,6 +153,15 @@ pub async fn run(
             if stop.is_cancelled() {
                 break;
             }
+            let id = d.id;
+            if !matches!(store.with(move |b| b.begin_delivery(id)).await, Ok(Ok(()))) {
+                // Without the mark a crash could repeat it unnoticed: wait.
+                tracing::warn!(
+                    delivery = id,
+                    "Could not mark a delivery as under way; trying later"
+                );
+                continue;
+            }
             let result = send(&cfg, &channels, &key, &d, clock.now()).await;
             let at = clock.now();
             let update = decide(&schedule, &d, result, at);
@@ -139,14 +176,31 @@ pub async fn run(
                     tracing::error!(notice = %d.notice.id(), channel = %d.channel, %error, "Delivery failed for good")
                 }
             }
-            let id = d.id;
-            if !matches!(
-                store.with(move |b| b.finish_delivery(id, &update)).await,
-                Ok(Ok(()))
-            ) {
-                tracing::error!(delivery = id, "Could not record a delivery outcome");
-            }
+            record(&store, id, update, &stop).await;
         }
+    }
+}
+
+/// Records an outcome, trying again (1 s doubling to 30 s) while the store
+/// cannot take it (a full disk): an outcome left unrecorded would make the
+/// next start send the notice again. Gives up only when the service stops;
+/// the delivery then stays marked as under way and is reclaimed at start.
+async fn record(store: &Store, id: i64, update: DeliveryUpdate, stop: &CancellationToken) {
+    let mut wait = std::time::Duration::from_secs(1);
+    loop {
+        let u = update.clone();
+        match store.with(move |b| b.finish_delivery(id, &u)).await {
+            Ok(Ok(())) => return,
+            Ok(Err(error)) => {
+                tracing::error!(delivery = id, %error, retry_in_s = wait.as_secs(), "Could not record a delivery outcome; trying again")
+            }
+            Err(_) => return,
+        }
+        tokio::select! {
+            _ = stop.cancelled() => return,
+            _ = tokio::time::sleep(wait) => {}
+        }
+        wait = (wait * 2).min(std::time::Duration::from_secs(30));
     }
 }
 
@@ -173,7 +227,11 @@ pub fn decide(
                 },
                 None => DeliveryUpdate::Failed {
                     at,
-                    error: format!("gave up after 24 h: {}", e.message),
+                    error: format!(
+                        "gave up after {} h: {}",
+                        schedule.give_up_after.num_hours(),
+                        e.message
+                    ),
                 },
             }
         }
@@ -276,5 +334,60 @@ async fn send(
         other => Err(DeliveryError::permanent(format!(
             "unknown channel `{other}`"
         ))),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::notify::notice::tests::{sample, utc};
+
+    #[test]
+    fn the_configured_schedule_drives_retries_and_the_give_up_message() {
+        let s = schedule(&crate::config::Delivery {
+            retry_first_seconds: 5,
+            retry_max_seconds: 20,
+            give_up_hours: 1,
+        });
+        let first = utc(2026, 7, 14, 2, 0);
+        let mut d = DueDelivery {
+            id: 1,
+            channel: "email".into(),
+            attempts: 0,
+            first_attempt_at: None,
+            notice: sample(),
+        };
+        // 5 s, 10 s, 20 s, then 20 s: doubling to the cap.
+        let mut at = first;
+        let mut waits = Vec::new();
+        for _ in 0..5 {
+            match decide(&s, &d, Err(DeliveryError::retriable("451")), at) {
+                DeliveryUpdate::Retry { next, .. } => {
+                    waits.push((next - at).num_seconds());
+                    d.attempts += 1;
+                    d.first_attempt_at.get_or_insert(at);
+                    at = next;
+                }
+                other => panic!("{other:?}"),
+            }
+        }
+        assert_eq!(waits, [5, 10, 20, 20, 20]);
+        // At the 1 h deadline it gives up, and says after how long.
+        match decide(
+            &s,
+            &d,
+            Err(DeliveryError::retriable("451")),
+            first + Duration::hours(1),
+        ) {
+            DeliveryUpdate::Failed { error, .. } => {
+                assert!(error.starts_with("gave up after 1 h: "), "{error}")
+            }
+            other => panic!("{other:?}"),
+        }
+        // The default is DESIGN.md's: 1 min doubling to 1 h, 24 h.
+        assert_eq!(
+            schedule(&crate::config::Delivery::default()),
+            RetrySchedule::default()
+        );
     }
 }

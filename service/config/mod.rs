@@ -66,6 +66,7 @@ pub struct Config {
     pub species: Species,
     pub smtp: Option<Smtp>,
     pub email_folder: Option<PathBuf>,
+    pub delivery: Delivery,
     pub web: Web,
     pub subscribers: Vec<Subscriber>,
     /// Things worth saying that do not stop the start.
@@ -126,6 +127,28 @@ pub struct Detection {
     pub independence_minutes: u32,
     pub max_payload_bytes: usize,
     pub future_tolerance_minutes: u32,
+}
+
+/// How the outbox retries a delivery that failed for a reason that may
+/// pass (`[delivery]`): the first wait, doubling up to the longest wait,
+/// and the deadline after the first attempt when it gives up and marks
+/// the delivery failed.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Delivery {
+    pub retry_first_seconds: u32,
+    pub retry_max_seconds: u32,
+    pub give_up_hours: u32,
+}
+
+impl Default for Delivery {
+    /// DESIGN.md "Delivery": 1 min doubling to 1 h, give up after 24 h.
+    fn default() -> Self {
+        Delivery {
+            retry_first_seconds: 60,
+            retry_max_seconds: 3600,
+            give_up_hours: 24,
+        }
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -339,6 +362,7 @@ const TOP_KEYS: &[&str] = &[
     "species",
     "smtp",
     "email_folder",
+    "delivery",
     "web",
     "subscriber",
 ];
@@ -388,6 +412,7 @@ pub fn parse(
         w.finish(t, &["dir"]);
         dir.map(|d| base.join(d.value))
     });
+    let delivery = read_delivery(&mut w, &mut top);
     let web = read_web(&mut w, &mut top, files);
     let defaults = SubscriberDefaults {
         timezone: service.as_ref().map(|s| s.timezone).unwrap_or(Tz::UTC),
@@ -525,6 +550,7 @@ pub fn parse(
         species,
         smtp,
         email_folder,
+        delivery,
         web,
         subscribers: subscribers.into_iter().map(|(s, _, _)| s).collect(),
         warnings,
@@ -904,6 +930,41 @@ fn read_detection(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>) -> Detection 
             "max_payload_bytes",
             "future_tolerance_minutes",
         ],
+    );
+    out
+}
+
+fn read_delivery(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>) -> Delivery {
+    let mut out = Delivery::default();
+    let Some(mut t) = w.table(top, "delivery") else {
+        return out;
+    };
+    // From 1 s (tests) to a day; the deadline from 1 h to a year.
+    if let Some(v) = w.int(&mut t, "retry_first_seconds", 1, 86_400) {
+        out.retry_first_seconds = v.value as u32;
+    }
+    let max = w.int(&mut t, "retry_max_seconds", 1, 86_400);
+    if let Some(v) = &max {
+        out.retry_max_seconds = v.value as u32;
+    }
+    if let Some(v) = w.int(&mut t, "give_up_hours", 1, 8_760) {
+        out.give_up_hours = v.value as u32;
+    }
+    if out.retry_max_seconds < out.retry_first_seconds {
+        let span = max.map(|m| m.span).unwrap_or(t.span.clone());
+        w.error(
+            &span,
+            "delivery.retry_max_seconds",
+            format!(
+                "{} is shorter than retry_first_seconds ({})",
+                out.retry_max_seconds, out.retry_first_seconds
+            ),
+            Some("the longest wait between attempts must be at least the first wait".into()),
+        );
+    }
+    w.finish(
+        t,
+        &["retry_first_seconds", "retry_max_seconds", "give_up_hours"],
     );
     out
 }

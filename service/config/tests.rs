@@ -410,3 +410,65 @@ fn hours_seasons_and_quiet_hours_use_the_calendar_parsers() {
         assert!(errs[0].hint.is_some());
     }
 }
+
+#[test]
+fn delivery_retry_settings_default_to_the_design_and_can_be_set() {
+    // DESIGN.md "Delivery": 1 min doubling to 1 h, give up after 24 h.
+    let cfg = parse_with(GOOD, &[]).unwrap();
+    assert_eq!(cfg.delivery, Delivery::default());
+    assert_eq!(
+        (
+            cfg.delivery.retry_first_seconds,
+            cfg.delivery.retry_max_seconds,
+            cfg.delivery.give_up_hours
+        ),
+        (60, 3600, 24)
+    );
+    let src = format!("{GOOD}\n[delivery]\nretry_first_seconds = 5\nretry_max_seconds = 300\ngive_up_hours = 48\n");
+    let cfg = parse_with(&src, &[]).unwrap();
+    assert_eq!(
+        cfg.delivery,
+        Delivery {
+            retry_first_seconds: 5,
+            retry_max_seconds: 300,
+            give_up_hours: 48
+        }
+    );
+}
+
+#[test]
+fn delivery_errors_name_the_line_and_unknown_keys_are_refused() {
+    // [delivery] starts on the line after GOOD's last one.
+    let base = GOOD.lines().count() + 1;
+    let src = format!("{GOOD}[delivery]\nretry_first_seconds = 0\nretry_max_seconds = \"an hour\"\ngive_up_after = 24\n");
+    let e = errors(&src);
+    let keys: Vec<(&str, usize)> = e.iter().map(|e| (e.key.as_str(), e.line)).collect();
+    assert!(
+        keys.contains(&("delivery.retry_first_seconds", base + 1)),
+        "{e:?}"
+    );
+    assert!(
+        keys.contains(&("delivery.retry_max_seconds", base + 2)),
+        "{e:?}"
+    );
+    assert!(
+        keys.contains(&("delivery.give_up_after", base + 3)),
+        "{e:?}"
+    );
+    assert!(e
+        .iter()
+        .all(|e| e.file == Path::new("/etc/outrider/outrider.toml")));
+
+    let src = format!("{GOOD}[delivery]\nretry_first_seconds = 600\nretry_max_seconds = 60\n");
+    let e = errors(&src);
+    assert_eq!(e.len(), 1, "{e:?}");
+    assert_eq!(
+        (e[0].key.as_str(), e[0].line),
+        ("delivery.retry_max_seconds", base + 2)
+    );
+    assert!(e[0]
+        .hint
+        .as_deref()
+        .unwrap_or("")
+        .contains("at least the first wait"));
+}
