@@ -8,6 +8,7 @@
 mod config_examples;
 mod delivery;
 mod deploy;
+mod faults;
 mod ingest;
 mod notices;
 mod replay;

@@ -7,7 +7,8 @@ Serve:
                [--auth USER:PASSWORD]
 
   Listens on 127.0.0.1:P. Each accepted message is written byte for byte to
-  D/NNNN.eml; each transaction (accepted or not) appends one JSON line to
+  D/NNNN.eml (numbering goes on after the files already in D); each
+  transaction (accepted or not) appends one JSON line to
   D/attempts.jsonl: {"stage", "code", "tls", "auth_user", "mail_from",
   "rcpt_tos"}. --fail-first N answers the first N DATA commands with
   "451 4.3.0" (RFC 5321 transient); --reject-rcpt answers every RCPT with
@@ -45,7 +46,9 @@ def serve(args):
 
     os.makedirs(args.dir, exist_ok=True)
     lock = threading.Lock()
-    state = {"data_seen": 0, "saved": 0}
+    # A restarted sink (same folder) goes on numbering after what is there.
+    saved = len([n for n in os.listdir(args.dir) if n.endswith(".eml")])
+    state = {"data_seen": 0, "saved": saved}
 
     def log(server, session, envelope, stage, code):
         # session.ssl is set by STARTTLS; an implicit-TLS transport has an
