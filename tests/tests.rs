@@ -9,6 +9,7 @@ mod config_examples;
 mod delivery;
 mod deploy;
 mod faults;
+mod hostile;
 mod ingest;
 mod notices;
 mod replay;
