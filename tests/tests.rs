@@ -13,4 +13,5 @@ mod hostile;
 mod ingest;
 mod notices;
 mod replay;
+mod secrets;
 mod util;

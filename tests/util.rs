@@ -93,6 +93,25 @@ impl Mosquitto {
         Self::launch(dir, &settings)
     }
 
+    /// A plain loopback broker that takes only `user` with `password`.
+    pub fn start_with_password(dir: &Path, user: &str, password: &str) -> Self {
+        let dir = dir.join("mosquitto-pw");
+        std::fs::create_dir_all(&dir).unwrap();
+        let pw = dir.join("passwd");
+        let ok = Command::new("mosquitto_passwd")
+            .args(["-b", "-c"])
+            .arg(&pw)
+            .args([user, password])
+            .status()
+            .expect("mosquitto_passwd (Debian package mosquitto)");
+        assert!(ok.success());
+        let settings = format!(
+            "allow_anonymous false\npassword_file {}\npersistence false\n",
+            pw.display()
+        );
+        Self::launch(dir, &settings)
+    }
+
     pub fn start(dir: &Path) -> Self {
         let dir = dir.join("mosquitto");
         // The settings that matter are those of deploy/mosquitto.conf:
@@ -424,8 +443,24 @@ pub fn publish_corpus_at(
     client_id: &str,
     rate: f64,
 ) -> serde_json::Value {
-    let out = Command::new(python())
-        .arg(repo().join("tests/clients/mqtt_corpus.py"))
+    publish_corpus_as(port, corpus, expect_rejections, client_id, rate, None)
+}
+
+/// [`publish_corpus_at`] logged in as (user, password).
+pub fn publish_corpus_as(
+    port: u16,
+    corpus: &Path,
+    expect_rejections: usize,
+    client_id: &str,
+    rate: f64,
+    login: Option<(&str, &str)>,
+) -> serde_json::Value {
+    let mut cmd = Command::new(python());
+    cmd.arg(repo().join("tests/clients/mqtt_corpus.py"));
+    if let Some((user, password)) = login {
+        cmd.args(["--username", user, "--password", password]);
+    }
+    let out = cmd
         .args([
             "--port",
             &port.to_string(),

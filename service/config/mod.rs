@@ -71,6 +71,21 @@ pub struct Config {
     pub subscribers: Vec<Subscriber>,
     /// Things worth saying that do not stop the start.
     pub warnings: Vec<String>,
+    /// Secrets read from files: (key path, file).
+    pub secret_files: Vec<(String, PathBuf)>,
+    /// Values written in a configuration file that are secrets in
+    /// themselves (a webhook URL with a password or a query string):
+    /// (file, key path).
+    pub secrets_in_text: Vec<(PathBuf, String)>,
+}
+
+/// Whether a webhook URL carries a secret of its own: a password in its
+/// user part (`https://user:pw@host/...`) or a query string (`?token=...`),
+/// the two places receivers put a shared secret when they take no signature.
+pub fn url_holds_secret(url: &str) -> bool {
+    let rest = url.split_once("://").map_or(url, |(_, r)| r);
+    let authority = rest.split(['/', '?', '#']).next().unwrap_or("");
+    authority.contains('@') || url.contains('?')
 }
 
 #[derive(Debug, Clone)]
@@ -343,7 +358,58 @@ pub fn load_with_env(
         read: &|p: &Path| std::fs::read_to_string(p),
         env,
     };
-    parse(path, &src, &extra, &files)
+    let mut cfg = parse(path, &src, &extra, &files)?;
+    let mode = |p: &Path| file_mode(p);
+    let more = permission_warnings(&cfg, &mode);
+    cfg.warnings.extend(more);
+    Ok(cfg)
+}
+
+/// The permission bits of a file (Unix), or `None` when they cannot be read.
+fn file_mode(p: &Path) -> Option<u32> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::metadata(p)
+            .ok()
+            .map(|m| m.permissions().mode() & 0o7777)
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = p;
+        None
+    }
+}
+
+/// Warnings for secrets every user of the machine may read: a `*_file`
+/// secret whose file is world-readable, and a configuration file that is
+/// world-readable while it holds a secret itself. `mode` gives a file's
+/// permission bits (injected, so this stays testable without files).
+pub fn permission_warnings(cfg: &Config, mode: &dyn Fn(&Path) -> Option<u32>) -> Vec<String> {
+    let mut out = Vec::new();
+    let readable_by_all = |p: &Path| mode(p).filter(|m| m & 0o004 != 0);
+    for (key, file) in &cfg.secret_files {
+        if let Some(m) = readable_by_all(file) {
+            out.push(format!(
+                "{key}: the secret file {} is readable by every user on this machine (mode {m:04o}); run chmod o-r on it (0600, or 0640 with the outrider group)",
+                file.display()
+            ));
+        }
+    }
+    let mut files: BTreeMap<&Path, Vec<&str>> = BTreeMap::new();
+    for (file, key) in &cfg.secrets_in_text {
+        files.entry(file.as_path()).or_default().push(key);
+    }
+    for (file, keys) in files {
+        if let Some(m) = readable_by_all(file) {
+            out.push(format!(
+                "{} is readable by every user on this machine (mode {m:04o}) and holds a secret ({}: a password or query string in a URL); run chmod o-r on it (0640 with the outrider group)",
+                file.display(),
+                keys.join(", ")
+            ));
+        }
+    }
+    out
 }
 
 /// What [`parse`] may look up outside the text: other files and the environment.
@@ -429,6 +495,7 @@ pub fn parse(
         w.finish(t, SUBSCRIBER_KEYS);
     }
     w.finish(top, TOP_KEYS);
+    let mut secret_files = std::mem::take(&mut w.secret_files);
     all_errors.append(&mut rep.errors);
 
     for (file, text) in subscriber_files {
@@ -450,6 +517,7 @@ pub fn parse(
                 subscribers.push((s, 0, file.clone()));
             }
             w.finish(t, SUBSCRIBER_KEYS);
+            secret_files.append(&mut w.secret_files);
         }
         all_errors.append(&mut rep.errors);
     }
@@ -516,6 +584,11 @@ pub fn parse(
             }
         }
     }
+    let secrets_in_text = subscribers
+        .iter()
+        .filter(|(s, _, _)| s.webhook.as_ref().is_some_and(|h| url_holds_secret(&h.url)))
+        .map(|(s, _, file)| (file.clone(), format!("subscriber `{}` webhook.url", s.id)))
+        .collect();
     if matches!(&broker, Some(Some(b)) if b.password.is_none() && !b.listen.ip().is_loopback()) {
         warnings.push("embedded broker is not on loopback".into());
     }
@@ -554,6 +627,8 @@ pub fn parse(
         web,
         subscribers: subscribers.into_iter().map(|(s, _, _)| s).collect(),
         warnings,
+        secret_files,
+        secrets_in_text,
     })
 }
 
@@ -612,7 +687,11 @@ fn read_secret(
             }
         },
         (None, Some(f)) => match (files.read)(Path::new(&f.value)) {
-            Ok(v) => Some(Secret(v.trim_end_matches(['\r', '\n']).to_string())),
+            Ok(v) => {
+                w.secret_files
+                    .push((t.key_path(&file_key), PathBuf::from(&f.value)));
+                Some(Secret(v.trim_end_matches(['\r', '\n']).to_string()))
+            }
             Err(err) => {
                 w.error(
                     &f.span,

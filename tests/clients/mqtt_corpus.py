@@ -31,6 +31,8 @@ def main() -> int:
     ap.add_argument("--timeout", type=float, default=60.0)
     ap.add_argument("--client-id", default="corpuspublisher")
     ap.add_argument("--rate", type=float, default=0.0)
+    ap.add_argument("--username")
+    ap.add_argument("--password")
     args = ap.parse_args()
 
     with open(args.corpus, encoding="utf-8") as f:
@@ -51,6 +53,8 @@ def main() -> int:
             rejections.append(json.loads(msg.payload.decode("utf-8")))
 
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=args.client_id)
+    if args.username:
+        client.username_pw_set(args.username, args.password)
     client.max_inflight_messages_set(100)
     client.max_queued_messages_set(0)
     client.on_connect = on_connect

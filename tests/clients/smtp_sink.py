@@ -4,7 +4,7 @@ MIME reader for what it received (Python's email package).
 Serve:
   smtp_sink.py serve --port P --dir D [--fail-first N] [--reject-rcpt]
                [--tls-cert C --tls-key K [--implicit-tls]]
-               [--auth USER:PASSWORD]
+               [--auth USER:PASSWORD [--auth-without-tls]]
 
   Listens on 127.0.0.1:P. Each accepted message is written byte for byte to
   D/NNNN.eml (numbering goes on after the files already in D); each
@@ -16,8 +16,9 @@ Serve:
   STARTTLS and refuses MAIL before it ("530"), or with --implicit-tls
   speaks TLS from the first byte (SMTPS); with --auth it offers AUTH
   PLAIN/LOGIN (after STARTTLS only, aiosmtpd's default) and accepts only
-  that user. Prints "ready" on stdout once listening; stops on SIGTERM or
-  when stdin closes.
+  that user (--auth-without-tls: also on a plain connection, for loopback
+  tests of a daemon that has no test CA). Prints "ready" on stdout once
+  listening; stops on SIGTERM or when stdin closes.
 
 Parse:
   smtp_sink.py parse FILE
@@ -122,6 +123,9 @@ def serve(args):
 
         kwargs["authenticator"] = authenticator
         kwargs["auth_required"] = True
+        if args.auth_without_tls:
+            # Loopback tests only: AUTH offered on a plain connection.
+            kwargs["auth_require_tls"] = False
 
     controller = Controller(
         Handler(),
@@ -219,6 +223,7 @@ def main():
     s.add_argument("--tls-key")
     s.add_argument("--implicit-tls", action="store_true")
     s.add_argument("--auth")
+    s.add_argument("--auth-without-tls", action="store_true")
     p = sub.add_parser("parse")
     p.add_argument("file")
     args = ap.parse_args()
