@@ -28,8 +28,9 @@ const OUTBOX_EVERY: Duration = Duration::from_millis(500);
 /// How often the time-driven checks (silent cameras) run.
 const TICK_EVERY: Duration = Duration::from_secs(1);
 
-/// The engine, warmed with the stored history it needs (its horizon), so a
-/// restart needs no full rebuild.
+/// The engine, warmed with the stored history it needs (its horizon) and
+/// the decisions it made over it, so a restart needs no full rebuild and
+/// decides as if it had never stopped.
 async fn warm_engine(
     cfg: Arc<Config>,
     store: &Store,
@@ -43,8 +44,13 @@ async fn warm_engine(
     engine.schedule_digests(digests);
     let n = history.len();
     engine.warm(history.iter());
+    // The decisions already made: cooldowns, held events and the hourly
+    // cap go on where they were, so a restart sends nothing twice.
+    let decisions = store.with(move |b| b.decisions(since)).await??;
+    engine.restore(decisions.iter());
     tracing::info!(
         messages = n,
+        decisions = decisions.len(),
         took_ms = started.elapsed().as_millis() as u64,
         "Engine warmed from the store"
     );

@@ -3,12 +3,19 @@
 //! signed webhook, MQTT; webhook and MQTT as the notice's JSON line or, per
 //! subscriber, as a CAP 1.2 alert), and records the outcome at once.
 //!
-//! Retries follow [`crate::notify::RetrySchedule`] (1 min doubling to 1 h,
-//! given up 24 h after the first attempt); a permanent error (SMTP 5xx,
-//! HTTP 4xx other than 408/429) fails the delivery at once. A delivery is
-//! recorded as sent right after the server accepts it, before anything
-//! else; only a crash in between can send it a second time, and then with
-//! the same Message-ID / idempotency key, so the receiver can tell.
+//! Retries follow [`crate::notify::RetrySchedule`] as `[delivery]` sets it
+//! (by default 1 min doubling to 1 h, given up 24 h after the first
+//! attempt); a permanent error (SMTP 5xx, HTTP 4xx other than 408/429)
+//! fails the delivery at once.
+//!
+//! Each attempt is marked as under way in the store before it starts, and
+//! its outcome is recorded right after the server answers, before
+//! anything else. Only a crash between the server's acceptance and that
+//! record can send a notice a second time; then the mark is still there at
+//! the next start, the repeat is logged as such, and it carries the same
+//! Message-ID / idempotency key, so the receiver can tell. (No protocol
+//! lets a sender ask an SMTP server whether it already took a message, so
+//! exactly once cannot be promised; docs/reliability.md.)
 
 use crate::clock::Clock;
 use crate::config::{Config, Subscriber};
@@ -99,6 +106,15 @@ pub fn link_key(state_dir: &Path) -> anyhow::Result<TokenKey> {
     Ok(TokenKey::new(bytes)?)
 }
 
+/// The retry schedule `[delivery]` asks for.
+pub fn schedule(d: &crate::config::Delivery) -> RetrySchedule {
+    RetrySchedule {
+        base: Duration::seconds(i64::from(d.retry_first_seconds)),
+        cap: Duration::seconds(i64::from(d.retry_max_seconds)),
+        give_up_after: Duration::hours(i64::from(d.give_up_hours)),
+    }
+}
+
 /// How many sends may be in flight at once per channel. A slow SMTP
 /// server then holds up only email; webhooks and MQTT go on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -148,6 +164,7 @@ struct Shared {
     key: TokenKey,
     clock: Arc<dyn Clock>,
     schedule: RetrySchedule,
+    stop: CancellationToken,
 }
 
 /// Runs until `stop` is cancelled, checking for due deliveries and digests
@@ -169,13 +186,15 @@ pub async fn run(
     use std::collections::HashSet;
     use std::sync::Mutex;
     use tokio::sync::Semaphore;
+    let retry = schedule(&cfg.delivery);
     let shared = Arc::new(Shared {
         store,
         cfg,
         channels,
         key,
         clock,
-        schedule: RetrySchedule::default(),
+        schedule: retry,
+        stop: stop.clone(),
     });
     let permits = |n: usize| Arc::new(Semaphore::new(n.max(1)));
     let (email, webhook, mqtt) = (
@@ -185,6 +204,18 @@ pub async fn run(
     );
     let in_flight: Arc<Mutex<HashSet<(bool, i64)>>> = Arc::default();
     let mut tasks = tokio::task::JoinSet::new();
+    // Attempts a previous process started but never finished: their
+    // outcome is unknown, so they are sent again (same Message-ID and
+    // idempotency key).
+    match shared.store.with(|b| b.reclaim_interrupted()).await {
+        Ok(Ok(list)) => {
+            for (notice, channel) in list {
+                tracing::warn!(%notice, %channel, "A delivery was under way when outrider last stopped; sending it again with the same Message-ID or idempotency key");
+            }
+        }
+        Ok(Err(error)) => tracing::warn!(%error, "Could not check for interrupted deliveries"),
+        Err(_) => return,
+    }
     loop {
         tokio::select! {
             _ = stop.cancelled() => break,
@@ -251,8 +282,27 @@ pub async fn run(
     while tasks.join_next().await.is_some() {}
 }
 
-/// One attempt: send, decide, record at once.
+/// One attempt: mark it under way, send, decide, record at once.
 async fn attempt(sh: &Shared, work: Work) {
+    let (digest, id) = work.key();
+    let marked = sh
+        .store
+        .with(move |b| {
+            if digest {
+                b.begin_digest(id)
+            } else {
+                b.begin_delivery(id)
+            }
+        })
+        .await;
+    if !matches!(marked, Ok(Ok(()))) {
+        // Without the mark a crash could repeat it unnoticed: wait.
+        tracing::warn!(
+            delivery = id,
+            "Could not mark a delivery as under way; trying later"
+        );
+        return;
+    }
     let now = sh.clock.now();
     let (result, attempts, first) = match &work {
         Work::Notice(d) => (
@@ -287,16 +337,40 @@ async fn attempt(sh: &Shared, work: Work) {
             tracing::error!(notice = %what, %channel, %error, "Delivery failed for good")
         }
     }
-    let recorded = match work {
-        Work::Notice(d) => {
-            sh.store
-                .with(move |b| b.finish_delivery(d.id, &update))
-                .await
+    record(&sh.store, digest, id, update, &sh.stop).await;
+}
+
+/// Records an outcome, trying again (1 s doubling to 30 s) while the store
+/// cannot take it (a full disk): an outcome left unrecorded would make the
+/// next start send the notice again. Gives up only when the service stops;
+/// the delivery then stays marked as under way and is reclaimed at start.
+async fn record(
+    store: &Store,
+    digest: bool,
+    id: i64,
+    update: DeliveryUpdate,
+    stop: &CancellationToken,
+) {
+    let mut wait = std::time::Duration::from_secs(1);
+    loop {
+        let u = update.clone();
+        let done = if digest {
+            store.with(move |b| b.finish_digest(id, &u)).await
+        } else {
+            store.with(move |b| b.finish_delivery(id, &u)).await
+        };
+        match done {
+            Ok(Ok(())) => return,
+            Ok(Err(error)) => {
+                tracing::error!(delivery = id, %error, retry_in_s = wait.as_secs(), "Could not record a delivery outcome; trying again")
+            }
+            Err(_) => return,
         }
-        Work::Digest(d) => sh.store.with(move |b| b.finish_digest(d.id, &update)).await,
-    };
-    if !matches!(recorded, Ok(Ok(()))) {
-        tracing::error!(notice = %what, "Could not record a delivery outcome");
+        tokio::select! {
+            _ = stop.cancelled() => return,
+            _ = tokio::time::sleep(wait) => {}
+        }
+        wait = (wait * 2).min(std::time::Duration::from_secs(30));
     }
 }
 
@@ -325,7 +399,11 @@ pub fn decide(
                 },
                 None => DeliveryUpdate::Failed {
                     at,
-                    error: format!("gave up after 24 h: {}", e.message),
+                    error: format!(
+                        "gave up after {} h: {}",
+                        schedule.give_up_after.num_hours(),
+                        e.message
+                    ),
                 },
             }
         }
@@ -533,5 +611,67 @@ async fn send(
         other => Err(DeliveryError::permanent(format!(
             "unknown channel `{other}`"
         ))),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::notify::notice::tests::{sample, utc};
+
+    #[test]
+    fn the_configured_schedule_drives_retries_and_the_give_up_message() {
+        let s = schedule(&crate::config::Delivery {
+            retry_first_seconds: 5,
+            retry_max_seconds: 20,
+            give_up_hours: 1,
+        });
+        let first = utc(2026, 7, 14, 2, 0);
+        let mut d = DueDelivery {
+            id: 1,
+            channel: "email".into(),
+            attempts: 0,
+            first_attempt_at: None,
+            notice: sample(),
+        };
+        // 5 s, 10 s, 20 s, then 20 s: doubling to the cap.
+        let mut at = first;
+        let mut waits = Vec::new();
+        for _ in 0..5 {
+            match decide(
+                &s,
+                d.attempts,
+                d.first_attempt_at,
+                Err(DeliveryError::retriable("451")),
+                at,
+            ) {
+                DeliveryUpdate::Retry { next, .. } => {
+                    waits.push((next - at).num_seconds());
+                    d.attempts += 1;
+                    d.first_attempt_at.get_or_insert(at);
+                    at = next;
+                }
+                other => panic!("{other:?}"),
+            }
+        }
+        assert_eq!(waits, [5, 10, 20, 20, 20]);
+        // At the 1 h deadline it gives up, and says after how long.
+        match decide(
+            &s,
+            d.attempts,
+            d.first_attempt_at,
+            Err(DeliveryError::retriable("451")),
+            first + Duration::hours(1),
+        ) {
+            DeliveryUpdate::Failed { error, .. } => {
+                assert!(error.starts_with("gave up after 1 h: "), "{error}")
+            }
+            other => panic!("{other:?}"),
+        }
+        // The default is DESIGN.md's: 1 min doubling to 1 h, 24 h.
+        assert_eq!(
+            schedule(&crate::config::Delivery::default()),
+            RetrySchedule::default()
+        );
     }
 }

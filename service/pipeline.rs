@@ -240,15 +240,24 @@ async fn commit_until_done(
     counters: &Counters,
 ) -> Option<Vec<Outcome>> {
     let mut delay = std::time::Duration::from_millis(250);
+    let mut refused_since: Option<std::time::Instant> = None;
     loop {
         match store.commit(batch.clone(), derived.clone()).await {
             Ok(o) => {
                 counters.set_store_writable(true);
+                if let Some(since) = refused_since {
+                    tracing::warn!(
+                        unwritable_ms = since.elapsed().as_millis() as u64,
+                        messages = batch.len(),
+                        "Store takes writes again; acknowledging resumes"
+                    );
+                }
                 return Some(o);
             }
             Err(e) if e.is_transient() => {
                 counters.set_store_writable(false);
-                tracing::error!(error = %e, retry_in_ms = delay.as_millis() as u64, "Store cannot take writes; not acknowledging until it can");
+                refused_since.get_or_insert_with(std::time::Instant::now);
+                tracing::error!(error = %e, retry_in_ms = delay.as_millis() as u64, messages = batch.len(), ready = false, "Store cannot take writes; not acknowledging until it can");
                 tokio::time::sleep(delay).await;
                 delay = (delay * 2).min(std::time::Duration::from_secs(30));
             }

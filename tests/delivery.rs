@@ -36,8 +36,12 @@ pub struct Sink {
 
 impl Sink {
     pub fn start(script: &str, dir: &Path, args: &[&str]) -> Sink {
+        Sink::start_at(script, dir, free_port(), args)
+    }
+
+    /// A sink on a given port (e.g. one that comes back after being away).
+    pub fn start_at(script: &str, dir: &Path, port: u16, args: &[&str]) -> Sink {
         std::fs::create_dir_all(dir).unwrap();
-        let port = free_port();
         let mut cmd = Command::new(python());
         cmd.arg(repo().join("tests/clients").join(script));
         if script == "smtp_sink.py" {

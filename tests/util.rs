@@ -93,6 +93,25 @@ impl Mosquitto {
         Self::launch(dir, &settings)
     }
 
+    /// A plain loopback broker that takes only `user` with `password`.
+    pub fn start_with_password(dir: &Path, user: &str, password: &str) -> Self {
+        let dir = dir.join("mosquitto-pw");
+        std::fs::create_dir_all(&dir).unwrap();
+        let pw = dir.join("passwd");
+        let ok = Command::new("mosquitto_passwd")
+            .args(["-b", "-c"])
+            .arg(&pw)
+            .args([user, password])
+            .status()
+            .expect("mosquitto_passwd (Debian package mosquitto)");
+        assert!(ok.success());
+        let settings = format!(
+            "allow_anonymous false\npassword_file {}\npersistence false\n",
+            pw.display()
+        );
+        Self::launch(dir, &settings)
+    }
+
     pub fn start(dir: &Path) -> Self {
         let dir = dir.join("mosquitto");
         // The settings that matter are those of deploy/mosquitto.conf:
@@ -103,6 +122,41 @@ impl Mosquitto {
             dir.display()
         );
         Self::launch(dir, &settings)
+    }
+
+    /// A broker with the durability settings of deploy/mosquitto.conf (its
+    /// section before "Listeners": persistence, autosave, queue and
+    /// in-flight limits, message size limit), persistence in `dir`, on a
+    /// loopback listener without TLS or passwords.
+    pub fn start_deploy(dir: &Path) -> Self {
+        let dir = dir.join("mosquitto-deploy");
+        std::fs::create_dir_all(&dir).unwrap();
+        let text = std::fs::read_to_string(repo().join("deploy/mosquitto.conf")).unwrap();
+        let durability = text
+            .split("# --- Listeners")
+            .next()
+            .unwrap()
+            .lines()
+            .filter(|l| !l.trim_start().starts_with('#') && !l.trim().is_empty())
+            .map(|l| {
+                if l.starts_with("persistence_location") {
+                    format!("persistence_location {}/", dir.display())
+                } else {
+                    l.to_string()
+                }
+            })
+            .collect::<Vec<_>>();
+        assert!(
+            durability.iter().any(|l| l == "persistence true"),
+            "deploy/mosquitto.conf turns persistence on: {durability:?}"
+        );
+        let settings = format!("allow_anonymous true\n{}\n", durability.join("\n"));
+        Self::launch(dir, &settings)
+    }
+
+    /// The settings lines this broker was started with (its mosquitto.conf).
+    pub fn conf(&self) -> String {
+        std::fs::read_to_string(self.dir.join("mosquitto.conf")).unwrap()
     }
 
     /// Writes `dir/mosquitto.conf` (a loopback listener on a free port, the
@@ -292,6 +346,20 @@ impl Daemon {
     pub fn log_text(&self) -> String {
         std::fs::read_to_string(&self.log).unwrap_or_default()
     }
+
+    /// The log as JSON lines (the harness runs with `--log-format json`).
+    pub fn log_lines(&self) -> Vec<serde_json::Value> {
+        self.log_text()
+            .lines()
+            .filter_map(|l| serde_json::from_str(l).ok())
+            .collect()
+    }
+
+    pub fn is_running(&mut self) -> bool {
+        self.child
+            .as_mut()
+            .is_some_and(|c| c.try_wait().ok().flatten().is_none())
+    }
 }
 
 impl Drop for Daemon {
@@ -305,6 +373,22 @@ pub fn status(config: &Path) -> serde_json::Value {
     let out = Command::new(BIN)
         .args(["status", "--json", "-c"])
         .arg(config)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "status failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// `outrider status --state-dir DIR --json`: needs no config (so no secrets
+/// in the environment).
+pub fn status_of(state_dir: &Path) -> serde_json::Value {
+    let out = Command::new(BIN)
+        .args(["status", "--json", "--state-dir"])
+        .arg(state_dir)
         .output()
         .unwrap();
     assert!(
@@ -348,8 +432,35 @@ pub fn publish_corpus(
     expect_rejections: usize,
     client_id: &str,
 ) -> serde_json::Value {
-    let out = Command::new(python())
-        .arg(repo().join("tests/clients/mqtt_corpus.py"))
+    publish_corpus_at(port, corpus, expect_rejections, client_id, 0.0)
+}
+
+/// [`publish_corpus`] at most `rate` messages a second (0: full speed).
+pub fn publish_corpus_at(
+    port: u16,
+    corpus: &Path,
+    expect_rejections: usize,
+    client_id: &str,
+    rate: f64,
+) -> serde_json::Value {
+    publish_corpus_as(port, corpus, expect_rejections, client_id, rate, None)
+}
+
+/// [`publish_corpus_at`] logged in as (user, password).
+pub fn publish_corpus_as(
+    port: u16,
+    corpus: &Path,
+    expect_rejections: usize,
+    client_id: &str,
+    rate: f64,
+    login: Option<(&str, &str)>,
+) -> serde_json::Value {
+    let mut cmd = Command::new(python());
+    cmd.arg(repo().join("tests/clients/mqtt_corpus.py"));
+    if let Some((user, password)) = login {
+        cmd.args(["--username", user, "--password", password]);
+    }
+    let out = cmd
         .args([
             "--port",
             &port.to_string(),
@@ -359,6 +470,8 @@ pub fn publish_corpus(
             "90",
             "--client-id",
             client_id,
+            "--rate",
+            &rate.to_string(),
         ])
         .arg("--corpus")
         .arg(corpus)

@@ -66,10 +66,26 @@ pub struct Config {
     pub species: Species,
     pub smtp: Option<Smtp>,
     pub email_folder: Option<PathBuf>,
+    pub delivery: Delivery,
     pub web: Web,
     pub subscribers: Vec<Subscriber>,
     /// Things worth saying that do not stop the start.
     pub warnings: Vec<String>,
+    /// Secrets read from files: (key path, file).
+    pub secret_files: Vec<(String, PathBuf)>,
+    /// Values written in a configuration file that are secrets in
+    /// themselves (a webhook URL with a password or a query string):
+    /// (file, key path).
+    pub secrets_in_text: Vec<(PathBuf, String)>,
+}
+
+/// Whether a webhook URL carries a secret of its own: a password in its
+/// user part (`https://user:pw@host/...`) or a query string (`?token=...`),
+/// the two places receivers put a shared secret when they take no signature.
+pub fn url_holds_secret(url: &str) -> bool {
+    let rest = url.split_once("://").map_or(url, |(_, r)| r);
+    let authority = rest.split(['/', '?', '#']).next().unwrap_or("");
+    authority.contains('@') || url.contains('?')
 }
 
 #[derive(Debug, Clone)]
@@ -126,6 +142,28 @@ pub struct Detection {
     pub independence_minutes: u32,
     pub max_payload_bytes: usize,
     pub future_tolerance_minutes: u32,
+}
+
+/// How the outbox retries a delivery that failed for a reason that may
+/// pass (`[delivery]`): the first wait, doubling up to the longest wait,
+/// and the deadline after the first attempt when it gives up and marks
+/// the delivery failed.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Delivery {
+    pub retry_first_seconds: u32,
+    pub retry_max_seconds: u32,
+    pub give_up_hours: u32,
+}
+
+impl Default for Delivery {
+    /// DESIGN.md "Delivery": 1 min doubling to 1 h, give up after 24 h.
+    fn default() -> Self {
+        Delivery {
+            retry_first_seconds: 60,
+            retry_max_seconds: 3600,
+            give_up_hours: 24,
+        }
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -353,7 +391,58 @@ pub fn load_with_env(
         read: &|p: &Path| std::fs::read_to_string(p),
         env,
     };
-    parse(path, &src, &extra, &files)
+    let mut cfg = parse(path, &src, &extra, &files)?;
+    let mode = |p: &Path| file_mode(p);
+    let more = permission_warnings(&cfg, &mode);
+    cfg.warnings.extend(more);
+    Ok(cfg)
+}
+
+/// The permission bits of a file (Unix), or `None` when they cannot be read.
+fn file_mode(p: &Path) -> Option<u32> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::metadata(p)
+            .ok()
+            .map(|m| m.permissions().mode() & 0o7777)
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = p;
+        None
+    }
+}
+
+/// Warnings for secrets every user of the machine may read: a `*_file`
+/// secret whose file is world-readable, and a configuration file that is
+/// world-readable while it holds a secret itself. `mode` gives a file's
+/// permission bits (injected, so this stays testable without files).
+pub fn permission_warnings(cfg: &Config, mode: &dyn Fn(&Path) -> Option<u32>) -> Vec<String> {
+    let mut out = Vec::new();
+    let readable_by_all = |p: &Path| mode(p).filter(|m| m & 0o004 != 0);
+    for (key, file) in &cfg.secret_files {
+        if let Some(m) = readable_by_all(file) {
+            out.push(format!(
+                "{key}: the secret file {} is readable by every user on this machine (mode {m:04o}); run chmod o-r on it (0600, or 0640 with the outrider group)",
+                file.display()
+            ));
+        }
+    }
+    let mut files: BTreeMap<&Path, Vec<&str>> = BTreeMap::new();
+    for (file, key) in &cfg.secrets_in_text {
+        files.entry(file.as_path()).or_default().push(key);
+    }
+    for (file, keys) in files {
+        if let Some(m) = readable_by_all(file) {
+            out.push(format!(
+                "{} is readable by every user on this machine (mode {m:04o}) and holds a secret ({}: a password or query string in a URL); run chmod o-r on it (0640 with the outrider group)",
+                file.display(),
+                keys.join(", ")
+            ));
+        }
+    }
+    out
 }
 
 /// What [`parse`] may look up outside the text: other files and the environment.
@@ -372,6 +461,7 @@ const TOP_KEYS: &[&str] = &[
     "species",
     "smtp",
     "email_folder",
+    "delivery",
     "web",
     "subscriber",
 ];
@@ -421,6 +511,7 @@ pub fn parse(
         w.finish(t, &["dir"]);
         dir.map(|d| base.join(d.value))
     });
+    let delivery = read_delivery(&mut w, &mut top);
     let web = read_web(&mut w, &mut top, files);
     let defaults = SubscriberDefaults {
         timezone: service.as_ref().map(|s| s.timezone).unwrap_or(Tz::UTC),
@@ -437,6 +528,7 @@ pub fn parse(
         w.finish(t, SUBSCRIBER_KEYS);
     }
     w.finish(top, TOP_KEYS);
+    let mut secret_files = std::mem::take(&mut w.secret_files);
     all_errors.append(&mut rep.errors);
 
     for (file, text) in subscriber_files {
@@ -458,6 +550,7 @@ pub fn parse(
                 subscribers.push((s, 0, file.clone()));
             }
             w.finish(t, SUBSCRIBER_KEYS);
+            secret_files.append(&mut w.secret_files);
         }
         all_errors.append(&mut rep.errors);
     }
@@ -524,6 +617,11 @@ pub fn parse(
             }
         }
     }
+    let secrets_in_text = subscribers
+        .iter()
+        .filter(|(s, _, _)| s.webhook.as_ref().is_some_and(|h| url_holds_secret(&h.url)))
+        .map(|(s, _, file)| (file.clone(), format!("subscriber `{}` webhook.url", s.id)))
+        .collect();
     if matches!(&broker, Some(Some(b)) if b.password.is_none() && !b.listen.ip().is_loopback()) {
         warnings.push("embedded broker is not on loopback".into());
     }
@@ -558,9 +656,12 @@ pub fn parse(
         species,
         smtp,
         email_folder,
+        delivery,
         web,
         subscribers: subscribers.into_iter().map(|(s, _, _)| s).collect(),
         warnings,
+        secret_files,
+        secrets_in_text,
     })
 }
 
@@ -619,7 +720,11 @@ fn read_secret(
             }
         },
         (None, Some(f)) => match (files.read)(Path::new(&f.value)) {
-            Ok(v) => Some(Secret(v.trim_end_matches(['\r', '\n']).to_string())),
+            Ok(v) => {
+                w.secret_files
+                    .push((t.key_path(&file_key), PathBuf::from(&f.value)));
+                Some(Secret(v.trim_end_matches(['\r', '\n']).to_string()))
+            }
             Err(err) => {
                 w.error(
                     &f.span,
@@ -937,6 +1042,41 @@ fn read_detection(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>) -> Detection 
             "max_payload_bytes",
             "future_tolerance_minutes",
         ],
+    );
+    out
+}
+
+fn read_delivery(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>) -> Delivery {
+    let mut out = Delivery::default();
+    let Some(mut t) = w.table(top, "delivery") else {
+        return out;
+    };
+    // From 1 s (tests) to a day; the deadline from 1 h to a year.
+    if let Some(v) = w.int(&mut t, "retry_first_seconds", 1, 86_400) {
+        out.retry_first_seconds = v.value as u32;
+    }
+    let max = w.int(&mut t, "retry_max_seconds", 1, 86_400);
+    if let Some(v) = &max {
+        out.retry_max_seconds = v.value as u32;
+    }
+    if let Some(v) = w.int(&mut t, "give_up_hours", 1, 8_760) {
+        out.give_up_hours = v.value as u32;
+    }
+    if out.retry_max_seconds < out.retry_first_seconds {
+        let span = max.map(|m| m.span).unwrap_or(t.span.clone());
+        w.error(
+            &span,
+            "delivery.retry_max_seconds",
+            format!(
+                "{} is shorter than retry_first_seconds ({})",
+                out.retry_max_seconds, out.retry_first_seconds
+            ),
+            Some("the longest wait between attempts must be at least the first wait".into()),
+        );
+    }
+    w.finish(
+        t,
+        &["retry_first_seconds", "retry_max_seconds", "give_up_hours"],
     );
     out
 }

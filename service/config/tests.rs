@@ -455,3 +455,111 @@ fn webhook_and_mqtt_formats() {
         errs[1]
     );
 }
+
+#[test]
+fn delivery_retry_settings_default_to_the_design_and_can_be_set() {
+    // DESIGN.md "Delivery": 1 min doubling to 1 h, give up after 24 h.
+    let cfg = parse_with(GOOD, &[]).unwrap();
+    assert_eq!(cfg.delivery, Delivery::default());
+    assert_eq!(
+        (
+            cfg.delivery.retry_first_seconds,
+            cfg.delivery.retry_max_seconds,
+            cfg.delivery.give_up_hours
+        ),
+        (60, 3600, 24)
+    );
+    let src = format!("{GOOD}\n[delivery]\nretry_first_seconds = 5\nretry_max_seconds = 300\ngive_up_hours = 48\n");
+    let cfg = parse_with(&src, &[]).unwrap();
+    assert_eq!(
+        cfg.delivery,
+        Delivery {
+            retry_first_seconds: 5,
+            retry_max_seconds: 300,
+            give_up_hours: 48
+        }
+    );
+}
+
+#[test]
+fn delivery_errors_name_the_line_and_unknown_keys_are_refused() {
+    // [delivery] starts on the line after GOOD's last one.
+    let base = GOOD.lines().count() + 1;
+    let src = format!("{GOOD}[delivery]\nretry_first_seconds = 0\nretry_max_seconds = \"an hour\"\ngive_up_after = 24\n");
+    let e = errors(&src);
+    let keys: Vec<(&str, usize)> = e.iter().map(|e| (e.key.as_str(), e.line)).collect();
+    assert!(
+        keys.contains(&("delivery.retry_first_seconds", base + 1)),
+        "{e:?}"
+    );
+    assert!(
+        keys.contains(&("delivery.retry_max_seconds", base + 2)),
+        "{e:?}"
+    );
+    assert!(
+        keys.contains(&("delivery.give_up_after", base + 3)),
+        "{e:?}"
+    );
+    assert!(e
+        .iter()
+        .all(|e| e.file == Path::new("/etc/outrider/outrider.toml")));
+
+    let src = format!("{GOOD}[delivery]\nretry_first_seconds = 600\nretry_max_seconds = 60\n");
+    let e = errors(&src);
+    assert_eq!(e.len(), 1, "{e:?}");
+    assert_eq!(
+        (e[0].key.as_str(), e[0].line),
+        ("delivery.retry_max_seconds", base + 2)
+    );
+    assert!(e[0]
+        .hint
+        .as_deref()
+        .unwrap_or("")
+        .contains("at least the first wait"));
+}
+
+#[test]
+fn urls_that_carry_a_secret_of_their_own() {
+    assert!(url_holds_secret("https://hooks.example.org/in?token=abc"));
+    assert!(url_holds_secret("https://user:pw@hooks.example.org/in"));
+    assert!(!url_holds_secret("https://hooks.example.org/outrider"));
+    // An @ in the path is not a user part.
+    assert!(!url_holds_secret("https://hooks.example.org/to/a@b"));
+}
+
+#[test]
+fn world_readable_secrets_are_warned_about_and_private_ones_are_not() {
+    let src = GOOD
+        .replace(
+            "from = \"outrider <n@kellerby.example>\"",
+            "from = \"outrider <n@kellerby.example>\"\nusername = \"n\"\npassword_file = \"/etc/outrider/secret.txt\"",
+        )
+        .replace(
+            "area = { lat = -31.56, lon = 148.05, radius_km = 6.0 }",
+            "area = { lat = -31.56, lon = 148.05, radius_km = 6.0 }\nwebhook = { url = \"https://hooks.kellerby.example/in?token=t0ken\" }",
+        );
+    let cfg = parse_with(&src, &[]).unwrap();
+    assert_eq!(
+        cfg.secret_files,
+        [(
+            "smtp.password_file".to_string(),
+            PathBuf::from("/etc/outrider/secret.txt")
+        )]
+    );
+    assert_eq!(cfg.secrets_in_text.len(), 1);
+    let modes = |open: u32| move |_p: &Path| Some(open);
+    let w = permission_warnings(&cfg, &modes(0o644));
+    assert_eq!(w.len(), 2, "{w:?}");
+    assert!(w[0].starts_with("smtp.password_file: the secret file /etc/outrider/secret.txt is readable by every user on this machine (mode 0644)"), "{}", w[0]);
+    assert!(w[1].starts_with("/etc/outrider/outrider.toml is readable by every user on this machine (mode 0644) and holds a secret (subscriber `stonecroft` webhook.url"), "{}", w[1]);
+    assert!(
+        !w.iter()
+            .any(|w| w.contains("t0ken") || w.contains("s3cret")),
+        "no secret in a warning"
+    );
+    assert!(permission_warnings(&cfg, &modes(0o640)).is_empty());
+    assert!(permission_warnings(&cfg, &modes(0o600)).is_empty());
+    // Without a secret in the text, a readable config is nothing to warn about.
+    let plain = parse_with(GOOD, &[]).unwrap();
+    assert!(permission_warnings(&plain, &modes(0o644)).is_empty());
+}

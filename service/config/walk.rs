@@ -73,11 +73,17 @@ pub fn type_name(v: &DeValue<'_>) -> &'static str {
 /// Typed reads that record an error and return `None` on the wrong type.
 pub struct Walker<'r, 's> {
     pub rep: &'r mut Reporter<'s>,
+    /// Secrets read from `*_file` keys: (key path, file), so that `load`
+    /// can warn about a secret file every user may read.
+    pub secret_files: Vec<(String, std::path::PathBuf)>,
 }
 
 impl<'r, 's> Walker<'r, 's> {
     pub fn new(rep: &'r mut Reporter<'s>) -> Self {
-        Self { rep }
+        Self {
+            rep,
+            secret_files: Vec::new(),
+        }
     }
 
     pub fn error(

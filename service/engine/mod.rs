@@ -199,6 +199,80 @@ impl Engine {
         self.quiet = false;
     }
 
+    /// Takes back the decisions stored before a restart (oldest first),
+    /// after [`Engine::warm`]: which events each watch has already decided,
+    /// the fatigue-control state (cooldowns, held events, the hourly cap),
+    /// the sent notices a retraction would follow up, and the silence
+    /// episodes still open. Without it a restarted daemon would send a
+    /// notice the running one would have folded. Decisions of a subscriber
+    /// or watch no longer in the config are skipped.
+    pub fn restore<'a>(&mut self, notices: impl IntoIterator<Item = &'a Notice>) {
+        use crate::notify::Trigger as T;
+        for n in notices {
+            let Some(sub) = self
+                .cfg
+                .subscribers
+                .iter()
+                .position(|s| s.id == n.subscriber_id)
+            else {
+                continue;
+            };
+            let Some(wi) = self.cfg.subscribers[sub]
+                .watches
+                .iter()
+                .position(|w| w.name == n.watch)
+            else {
+                continue;
+            };
+            let Some(site) = self.rules.site_index(&n.deployment_id) else {
+                continue;
+            };
+            match n.trigger {
+                T::Presence | T::FirstSeen | T::Spike => {
+                    if let Some(species) = &n.scientific_name {
+                        let id = EventId {
+                            deployment_id: n.deployment_id.clone(),
+                            scientific_name: species.clone(),
+                            start: n.event_time,
+                        };
+                        if n.disposition == Disposition::Sent {
+                            self.sent_for.entry(id.clone()).or_default().push(n.clone());
+                        }
+                        self.decided.insert((sub, wi, id));
+                    }
+                }
+                // Open until a later sign of life (warm has seen them all).
+                T::Silence if self.last_sign[site] <= n.event_time => {
+                    self.silent.insert((sub, wi, site), n.event_time);
+                }
+                // A follow-up bypasses the policy (see follow_up).
+                T::Retraction => continue,
+                _ => {}
+            }
+            let cooldown = self.cfg.subscribers[sub].watches[wi].cooldown_minutes;
+            // The count a held event carries is the event's (a spike
+            // notice's evidence counts the whole window instead).
+            let count = match (n.trigger, &n.scientific_name) {
+                (T::Spike, Some(species)) => self
+                    .ledger
+                    .event_summary(&EventId {
+                        deployment_id: n.deployment_id.clone(),
+                        scientific_name: species.clone(),
+                        start: n.event_time,
+                    })
+                    .map(|e| e.count),
+                _ => None,
+            };
+            let folded = crate::notify::notice::FoldedEvent {
+                event_id: n.event_id.clone(),
+                event_time: n.event_time,
+                count: count.or(n.evidence.count).unwrap_or(0),
+            };
+            self.policy
+                .restore(&n.fold_key(), n.disposition, n.at, folded, cooldown);
+        }
+    }
+
     /// The rule book (sites covered per subscriber).
     pub fn rules(&self) -> &RuleBook {
         &self.rules

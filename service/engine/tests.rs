@@ -357,3 +357,148 @@ fn a_correction_that_overtakes_its_observation_waits_for_it() {
     );
     assert_eq!(e.events().count(), 0, "and leaves no event");
 }
+
+/// One step of a simulated daemon run: a message arriving at a time, or a
+/// tick of the time-driven checks.
+enum Step {
+    Msg(Box<Message>, DateTime<Utc>),
+    Tick(DateTime<Utc>),
+}
+
+/// Three days at three cameras: dogs, foxes and pigs at pseudo-random
+/// times (a fixed linear congruential sequence), hourly heartbeats except
+/// for a 20-hour outage at KB-07, one retraction, and a tick every 30 min.
+fn restart_run() -> Vec<Step> {
+    let t0 = t("2026-07-14T00:00:00+10:00");
+    let mut x: u64 = 12345;
+    let mut next = |m: u64| {
+        x = x
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        (x >> 33) % m
+    };
+    let mut steps = Vec::new();
+    let mut n = 0;
+    for half_hour in 0..(3 * 48) {
+        let at = t0 + Duration::minutes(30 * half_hour);
+        for dep in ["KB-06", "KB-07", "KB-16"] {
+            let out = dep == "KB-07" && (20..60).contains(&half_hour);
+            if half_hour % 2 == 0 && !out {
+                steps.push(Step::Msg(Box::new(hb(dep, at)), at));
+            }
+            if !out && next(3) == 0 {
+                let species = ["Canis familiaris", "Vulpes vulpes", "Sus scrofa"][next(3) as usize];
+                let when = at + Duration::minutes(next(29) as i64);
+                n += 1;
+                steps.push(Step::Msg(
+                    Box::new(obs(&format!("o{n}"), dep, species, when)),
+                    when + Duration::minutes(1),
+                ));
+            }
+        }
+        if half_hour == 70 {
+            let fix = Message::Correction(Correction {
+                observation_id: "o3".into(),
+                deployment_id: "KB-06".into(),
+                scientific_name: None,
+                count: None,
+                observation_type: Some(ObservationType::Blank),
+            });
+            steps.push(Step::Msg(Box::new(fix), at));
+        }
+        steps.push(Step::Tick(at + Duration::minutes(29)));
+    }
+    steps
+}
+
+/// What a run decided: each notice's id, disposition and held events.
+fn decisions(out: &[Output]) -> Vec<(String, Disposition, Vec<String>)> {
+    notices(out)
+        .into_iter()
+        .map(|(n, _)| {
+            let held = n.folded.iter().map(|f| f.event_id.clone()).collect();
+            (n.id().as_str().to_string(), n.disposition, held)
+        })
+        .collect()
+}
+
+fn drive(e: &mut Engine, steps: &[Step]) -> Vec<Output> {
+    let mut out = Vec::new();
+    for s in steps {
+        match s {
+            Step::Msg(m, now) => out.extend(e.apply(m, *now)),
+            Step::Tick(now) => out.extend(e.tick(*now)),
+        }
+    }
+    out
+}
+
+/// kill -9 at any step: the restarted engine, warmed from the stored
+/// messages and given back the stored decisions, decides everything after
+/// the restart as the engine that kept running did. Without the decisions
+/// (warm alone) it would not: it sends notices the running one folded.
+#[test]
+fn a_restart_anywhere_decides_as_the_engine_that_kept_running() {
+    let subs = "[[subscriber]]\nid = \"stonecroft\"\nemail = \"o@stonecroft.example\"\nmax_per_hour = 3\narea = \"all\"\n[[subscriber.watch]]\nname = \"predators\"\ntrigger = \"presence\"\nspecies = [\"@predators\"]\ncooldown_minutes = 180\nchannels = [\"email\"]\n[[subscriber.watch]]\nname = \"pigs back\"\ntrigger = \"first-seen\"\nspecies = [\"Sus scrofa\"]\nquiet_days = 1\ncooldown_minutes = 0\nchannels = [\"email\"]\n[[subscriber]]\nid = \"coord\"\nemail = \"c@kellerby.example\"\narea = \"all\"\n[[subscriber.watch]]\nname = \"quiet cameras\"\ntrigger = \"silence\"\nsilence_hours = 6\ncooldown_minutes = 0\nchannels = [\"email\"]\n";
+    let cfg = config(subs);
+    let steps = restart_run();
+    let mut whole = Engine::new(cfg.clone());
+    let mut all = Vec::new();
+    let mut at_step = Vec::new();
+    for s in &steps {
+        let out = drive(&mut whole, std::slice::from_ref(s));
+        at_step.push(all.len());
+        all.extend(out);
+    }
+    let sent = decisions(&all)
+        .iter()
+        .filter(|d| d.1 == Disposition::Sent)
+        .count();
+    let folded = decisions(&all)
+        .iter()
+        .filter(|d| d.1 == Disposition::Folded)
+        .count();
+    assert!(
+        sent > 5 && folded > 5,
+        "the run exercises the policy: {sent} sent, {folded} folded"
+    );
+    let mut differs_without = 0;
+    for cut in (1..steps.len()).step_by(7) {
+        // What the store holds at the kill: the messages and decisions
+        // committed before step `cut`; history comes back by time, then
+        // the corrections (Backend::history).
+        let mut history: Vec<&Message> = steps[..cut]
+            .iter()
+            .filter_map(|s| match s {
+                Step::Msg(m, _) => Some(m.as_ref()),
+                Step::Tick(_) => None,
+            })
+            .collect();
+        history.sort_by_key(|m| match m {
+            Message::Observation(o) => (0, o.event_start),
+            Message::Heartbeat(h) => (0, h.timestamp),
+            Message::Correction(_) => (1, DateTime::<Utc>::MIN_UTC),
+        });
+        let stored: Vec<Notice> = notices(&all[..at_step[cut]])
+            .into_iter()
+            .map(|(n, _)| n.clone())
+            .collect();
+        let want = decisions(&all[at_step[cut]..]);
+
+        let mut restarted = Engine::new(cfg.clone());
+        restarted.warm(history.iter().copied());
+        restarted.restore(&stored);
+        let got = decisions(&drive(&mut restarted, &steps[cut..]));
+        assert_eq!(got, want, "restart before step {cut}");
+
+        let mut forgetful = Engine::new(cfg.clone());
+        forgetful.warm(history.iter().copied());
+        if decisions(&drive(&mut forgetful, &steps[cut..])) != want {
+            differs_without += 1;
+        }
+    }
+    assert!(
+        differs_without > 0,
+        "the check can tell a forgetful restart"
+    );
+}

@@ -66,7 +66,7 @@ struct RawObservation {
     #[serde(rename = "scientificName", default)]
     scientific_name: Option<String>,
     #[serde(default)]
-    count: Option<u64>,
+    count: Option<JsonNumber>,
     #[serde(rename = "classificationProbability", default)]
     classification_probability: Option<f64>,
     #[serde(rename = "classificationMethod", default)]
@@ -95,7 +95,7 @@ struct RawHeartbeat {
     #[serde(rename = "signalDbm", default)]
     signal_dbm: Option<f64>,
     #[serde(rename = "imagesSinceLast", default)]
-    images_since_last: Option<u64>,
+    images_since_last: Option<JsonNumber>,
 }
 
 #[derive(Deserialize)]
@@ -107,9 +107,73 @@ struct RawCorrection {
     #[serde(rename = "scientificName", default)]
     scientific_name: Option<String>,
     #[serde(default)]
-    count: Option<u64>,
+    count: Option<JsonNumber>,
     #[serde(rename = "observationType", default)]
     observation_type: Option<String>,
+}
+
+/// A JSON number where a whole number is wanted. JSON has one number type
+/// (RFC 8259 §6), so `3`, `3.0` and `3e0` are the same count; `2.5`, `-1`
+/// or `1e23` are numbers whose value is out of place (`invalid-value`),
+/// not values of the wrong type. Only a non-number (`"3"`, `true`) is
+/// `wrong-type`. (Integers beyond 64 bits arrive as floats from serde_json;
+/// beyond f64's range serde_json itself refuses them as out of range.)
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum JsonNumber {
+    Int(i128),
+    Float(f64),
+}
+
+impl<'de> Deserialize<'de> for JsonNumber {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl serde::de::Visitor<'_> for V {
+            type Value = JsonNumber;
+            fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+                f.write_str("a number")
+            }
+            fn visit_u64<E>(self, v: u64) -> Result<JsonNumber, E> {
+                Ok(JsonNumber::Int(i128::from(v)))
+            }
+            fn visit_i64<E>(self, v: i64) -> Result<JsonNumber, E> {
+                Ok(JsonNumber::Int(i128::from(v)))
+            }
+            fn visit_f64<E>(self, v: f64) -> Result<JsonNumber, E> {
+                Ok(JsonNumber::Float(v))
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
+impl std::fmt::Display for JsonNumber {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            JsonNumber::Int(i) => write!(f, "{i}"),
+            JsonNumber::Float(x) => write!(f, "{x}"),
+        }
+    }
+}
+
+/// `n` as a whole number in `[min, max]`, or why not.
+fn whole(field: &str, n: JsonNumber, min: u64, max: u64) -> Result<u64, Rejection> {
+    let v = match n {
+        JsonNumber::Int(i) => Some(i),
+        // Exact: every f64 with no fraction below 2^63 is an integer.
+        JsonNumber::Float(x) if x.fract() == 0.0 && x.abs() < 9.2e18 => Some(x as i128),
+        JsonNumber::Float(_) => None,
+    };
+    match v {
+        Some(v) if (i128::from(min)..=i128::from(max)).contains(&v) => Ok(v as u64),
+        Some(_) => Err(Rejection::new(
+            R::InvalidValue,
+            format!("{field} {n} is outside {min} to {max}"),
+        )),
+        None => Err(Rejection::new(
+            R::InvalidValue,
+            format!("{field} {n} is not a whole number"),
+        )),
+    }
 }
 
 /// Decodes one MQTT message.
@@ -244,7 +308,25 @@ fn check_text(field: &str, value: &str) -> Result<(), Rejection> {
             format!("{field} holds control characters: `{}`", printable(value)),
         ));
     }
+    if value.chars().any(is_bidi_control) {
+        return Err(Rejection::new(
+            R::InvalidValue,
+            format!(
+                "{field} holds a bidirectional text control, which can make text read differently from what it holds: `{}`",
+                printable(value)
+            ),
+        ));
+    }
     Ok(())
+}
+
+/// The explicit directional embeddings, overrides and isolates of Unicode's
+/// bidirectional algorithm (UAX #9: U+202A..U+202E, U+2066..U+2069): no
+/// label or identifier needs them, and they can reorder what a person
+/// sees in a log line or an email ("Trojan Source", CVE-2021-42574, from
+/// memory). The implicit marks (U+200E, U+200F) stay allowed.
+fn is_bidi_control(c: char) -> bool {
+    matches!(c, '\u{202A}'..='\u{202E}' | '\u{2066}'..='\u{2069}')
 }
 
 fn check_opt(field: &str, value: Option<String>) -> Result<Option<String>, Rejection> {
@@ -326,15 +408,8 @@ fn timestamp(
     Ok(t)
 }
 
-fn count(field: &str, v: u64) -> Result<u32, Rejection> {
-    if (1..=10_000).contains(&v) {
-        Ok(v as u32)
-    } else {
-        Err(Rejection::new(
-            R::InvalidValue,
-            format!("{field} {v} is outside 1 to 10000"),
-        ))
-    }
+fn count(field: &str, v: JsonNumber) -> Result<u32, Rejection> {
+    whole(field, v, 1, 10_000).map(|c| c as u32)
 }
 
 fn species_name(raw: &str, ctx: &DecodeContext<'_>) -> Result<String, Rejection> {
@@ -461,7 +536,10 @@ fn heartbeat(
         timestamp: ts,
         battery_percent: raw.battery_percent,
         signal_dbm: raw.signal_dbm,
-        images_since_last: raw.images_since_last,
+        images_since_last: raw
+            .images_since_last
+            .map(|n| whole("imagesSinceLast", n, 0, u64::from(u32::MAX)))
+            .transpose()?,
     })
 }
 
@@ -471,6 +549,9 @@ fn correction(
     ctx: &DecodeContext<'_>,
 ) -> Result<Correction, Rejection> {
     check_text("observationID", &raw.observation_id)?;
+    if raw.observation_id.trim().is_empty() {
+        return Err(Rejection::new(R::InvalidValue, "observationID is empty"));
+    }
     let (dep, _) = deployment(topic_dep, raw.deployment_id.as_deref(), ctx)?;
     let observation_type = match raw.observation_type.as_deref() {
         None | Some("") => None,

@@ -290,3 +290,74 @@ mod properties {
         }
     }
 }
+
+/// Gaps the hostile corpus (tests/data/hostile/) found: a number is judged
+/// by its value (RFC 8259 §6 has one number type), bidirectional controls
+/// are refused in text, and a correction needs an observationID.
+#[test]
+fn numbers_are_judged_by_value_bidi_controls_and_empty_correction_ids_refused() {
+    let f = Fixture::new();
+    let count = |v: &str| {
+        f.obs(&GOOD.replace("\"count\":2", &format!("\"count\":{v}")))
+            .map(|m| match m {
+                Message::Observation(o) => o.count,
+                _ => 0,
+            })
+            .map_err(|r| r.reason)
+    };
+    assert_eq!(count("3.0"), Ok(3), "3.0 is the number 3");
+    assert_eq!(count("3e0"), Ok(3));
+    assert_eq!(count("2.5"), Err(RejectReason::InvalidValue));
+    // Beyond u64: serde_json reads it as a float; its value is out of range.
+    assert_eq!(
+        count("99999999999999999999999"),
+        Err(RejectReason::InvalidValue)
+    );
+    assert_eq!(count("1e23"), Err(RejectReason::InvalidValue));
+    assert_eq!(count("-0"), Err(RejectReason::InvalidValue));
+    assert_eq!(count("\"3\""), Err(RejectReason::WrongType));
+    assert_eq!(count("true"), Err(RejectReason::WrongType));
+    let hb = |v: &str| {
+        decode(
+            "outrider/KB-07/heartbeat",
+            format!(r#"{{"deploymentID":"KB-07","timestamp":"2026-07-13T16:00:00Z","imagesSinceLast":{v}}}"#).as_bytes(),
+            &f.ctx(),
+        )
+        .map(|_| ())
+        .map_err(|r| r.reason)
+    };
+    assert_eq!(hb("4"), Ok(()));
+    assert_eq!(hb("-1"), Err(RejectReason::InvalidValue));
+    assert_eq!(hb("4.5"), Err(RejectReason::InvalidValue));
+    assert_eq!(hb("[]"), Err(RejectReason::WrongType));
+
+    // U+202E RIGHT-TO-LEFT OVERRIDE and U+2066 LEFT-TO-RIGHT ISOLATE (UAX #9).
+    for name in ["\\u202egod dliw", "dog\\u2066"] {
+        let p = GOOD.replace(
+            "\"count\":2",
+            &format!("\"count\":2,\"vernacularName\":\"{name}\""),
+        );
+        assert_eq!(
+            f.obs(&p).map(|_| ()).map_err(|r| r.reason),
+            Err(RejectReason::InvalidValue),
+            "{name}"
+        );
+    }
+    // An implicit mark (U+200F RIGHT-TO-LEFT MARK) is text, not a control.
+    let p = GOOD.replace(
+        "\"count\":2",
+        "\"count\":2,\"vernacularName\":\"dingo\\u200f\"",
+    );
+    assert!(f.obs(&p).is_ok());
+
+    for id in ["", "  "] {
+        let p = format!(r#"{{"observationID":"{id}","observationType":"blank"}}"#);
+        assert_eq!(
+            decode("outrider/KB-07/correction", p.as_bytes(), &f.ctx())
+                .map(|_| ())
+                .map_err(|r| r.reason),
+            Err(RejectReason::InvalidValue),
+            "{id:?}"
+        );
+    }
+}

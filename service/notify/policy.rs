@@ -3,9 +3,10 @@
 //!
 //! Role: a sans-I/O state machine in the manner of rumqttc's `state.rs`.
 //! [`Policy::on_candidate`] changes the state and returns a [`Decision`];
-//! the shell stores the notice with that disposition, enqueues the sent
-//! ones, and persists the [`Policy`] (it is `serde`) so that a restart keeps
-//! cooldowns and the hourly count. No I/O and no clock: `now` is passed in,
+//! the shell stores the notice with that disposition and enqueues the sent
+//! ones. A restart keeps cooldowns, held events and the hourly count: the
+//! engine hands the stored decisions back to [`Policy::restore`] (the
+//! [`Policy`] is also `serde`, for a snapshot). No I/O and no clock: `now` is passed in,
 //! and must not go backwards between calls (the daemon's clock and replay's
 //! simulated clock both move forward).
 //!
@@ -274,6 +275,42 @@ impl Policy {
                 .filter(|t| **t > now - CAP_WINDOW && **t <= now)
                 .count()
         })
+    }
+
+    /// Takes back one decision made earlier (by this process before a
+    /// restart, read back from the store), so that the state after a
+    /// restart is the state the running process had: the same cooldowns,
+    /// the same held events, the same sends in the cap window. Give the
+    /// decisions oldest first, with the watch's current `cooldown_minutes`.
+    /// A deferred decision changed nothing and changes nothing here.
+    pub fn restore(
+        &mut self,
+        key: &FoldKey,
+        disposition: Disposition,
+        at: DateTime<Utc>,
+        folded: FoldedEvent,
+        cooldown_minutes: u32,
+    ) {
+        match disposition {
+            Disposition::Sent => {
+                let sends = self.sent.entry(key.subscriber.clone()).or_default();
+                // Oldest first, as on_candidate keeps them.
+                let i = sends.partition_point(|t| *t <= at);
+                sends.insert(i, at);
+                let ks = self.keys.entry(key.clone()).or_default();
+                ks.last_sent = Some(at);
+                ks.cooldown_until = Some(at + Duration::minutes(i64::from(cooldown_minutes)));
+                // The notice sent took what was held (take_folded).
+                ks.folded.clear();
+            }
+            Disposition::Folded => {
+                let ks = self.keys.entry(key.clone()).or_default();
+                if !ks.folded.iter().any(|f| f.event_id == folded.event_id) {
+                    ks.folded.push(folded);
+                }
+            }
+            Disposition::Deferred => {}
+        }
     }
 
     /// Drop what can no longer affect a decision: keys whose cooldown has
@@ -611,5 +648,56 @@ mod tests {
             prop_assert_eq!(got, all);
             prop_assert_eq!(restored, whole);
         }
+
+        /// A restart rebuilds the state from the stored decisions alone
+        /// (no snapshot): every decision after the restart is the one the
+        /// process that kept running made.
+        #[test]
+        fn restored_from_stored_decisions_gives_the_same_decisions(
+            s in steps(), cooldown in 0u32..90, cap in 0u32..5, cut in 0usize..120
+        ) {
+            let start = utc(2025, 7, 14, 8, 0);
+            let cut = cut.min(s.len());
+            let mut whole = Policy::new();
+            let (all, _) = run(&mut whole, &s, start, cooldown, cap, 0);
+
+            let mut first = Policy::new();
+            let (mut got, t) = run(&mut first, &s[..cut], start, cooldown, cap, 0);
+            let mut restored = Policy::new();
+            for (i, (at, k, d)) in got.iter().enumerate() {
+                let folded = FoldedEvent { event_id: format!("ev{i}"), event_time: *at, count: 1 };
+                restored.restore(k, d.disposition(), *at, folded, cooldown);
+            }
+            let (rest, _) = run(&mut restored, &s[cut..], t, cooldown, cap, cut);
+            let n = got.len();
+            got.extend(rest);
+            prop_assert_eq!(&got[n..], &all[n..]);
+        }
+    }
+
+    #[test]
+    fn restore_takes_back_cooldown_held_events_and_the_cap() {
+        let mut p = Policy::new();
+        let k = key("stonecroft", "KB-07");
+        let t0 = utc(2025, 7, 14, 12, 0);
+        let ev = |id: &str, t| FoldedEvent {
+            event_id: id.into(),
+            event_time: t,
+            count: 1,
+        };
+        p.restore(&k, Disposition::Sent, t0, ev("e1", t0), 120);
+        let t1 = t0 + Duration::minutes(40);
+        p.restore(&k, Disposition::Folded, t1, ev("e2", t1), 120);
+        assert_eq!(p.sent_in_last_hour("stonecroft", t1), 1);
+        // Still in the cooldown: folds, and the held event is still there.
+        let t2 = t0 + Duration::minutes(80);
+        assert_eq!(
+            p.on_candidate(&cand(&k, "e3", t2), t2).disposition(),
+            Disposition::Folded
+        );
+        let t3 = t0 + Duration::minutes(121);
+        assert!(is_send(&p.on_candidate(&cand(&k, "e4", t3), t3)));
+        let held: Vec<String> = p.take_folded(&k).into_iter().map(|f| f.event_id).collect();
+        assert_eq!(held, ["e2", "e3"]);
     }
 }

@@ -121,12 +121,26 @@ pub trait Backend: Send + 'static {
     /// heartbeats by their own time), then the corrections of those
     /// observations in arrival order: what the engine needs to warm up.
     fn history(&mut self, since: DateTime<Utc>) -> Result<Vec<Message>, StoreError>;
+    /// Notice decisions made at or after `since`, oldest first (decision
+    /// time, then the order they were stored): what the engine takes back
+    /// after a restart (`Engine::restore`).
+    fn decisions(&mut self, since: DateTime<Utc>)
+        -> Result<Vec<crate::notify::Notice>, StoreError>;
     /// Pending deliveries due at `now`, oldest first.
     fn due_deliveries(
         &mut self,
         now: DateTime<Utc>,
         limit: usize,
     ) -> Result<Vec<sqlite::DueDelivery>, StoreError>;
+    /// Marks a delivery as under way, durably, just before its attempt; the
+    /// outcome ([`Backend::finish_delivery`]) ends the mark.
+    fn begin_delivery(&mut self, id: i64) -> Result<(), StoreError>;
+    /// The same for a digest.
+    fn begin_digest(&mut self, id: i64) -> Result<(), StoreError>;
+    /// Deliveries still marked as under way (the process stopped between
+    /// an attempt and its outcome), put back as pending: (notice id,
+    /// channel) of each.
+    fn reclaim_interrupted(&mut self) -> Result<Vec<(String, String)>, StoreError>;
     /// Records the outcome of a delivery attempt.
     fn finish_delivery(
         &mut self,

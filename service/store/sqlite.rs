@@ -487,7 +487,9 @@ impl Backend for Sqlite {
             ..Default::default()
         };
         s.events = count("SELECT count(*) FROM events")?;
-        s.outbox_pending = count("SELECT count(*) FROM deliveries WHERE state = 'pending'")?;
+        // Under way ('sending') is still pending until its outcome is known.
+        s.outbox_pending =
+            count("SELECT count(*) FROM deliveries WHERE state IN ('pending', 'sending')")?;
         let mut stmt =
             c.prepare("SELECT disposition, count(*) FROM notices GROUP BY disposition")?;
         for row in stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))? {
@@ -528,12 +530,70 @@ impl Backend for Sqlite {
         load_history(&self.conn, since)
     }
 
+    fn decisions(
+        &mut self,
+        since: DateTime<Utc>,
+    ) -> Result<Vec<crate::notify::Notice>, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare_cached("SELECT notice FROM notices WHERE at >= ?1 ORDER BY at, rowid")?;
+        let rows = stmt.query_map(params![ms(since)], |r| r.get::<_, String>(0))?;
+        let mut out = Vec::new();
+        for row in rows {
+            // Written by this program; a row that does not read back is
+            // damaged and is left out rather than stopping the start.
+            match serde_json::from_str(&row?) {
+                Ok(n) => out.push(n),
+                Err(error) => tracing::warn!(%error, "Skipping an unreadable stored notice"),
+            }
+        }
+        Ok(out)
+    }
+
     fn due_deliveries(
         &mut self,
         now: DateTime<Utc>,
         limit: usize,
     ) -> Result<Vec<DueDelivery>, StoreError> {
         Sqlite::due_deliveries(self, now, limit)
+    }
+
+    fn begin_delivery(&mut self, id: i64) -> Result<(), StoreError> {
+        self.conn.execute(
+            "UPDATE deliveries SET state = 'sending' WHERE id = ?1 AND state = 'pending'",
+            params![id],
+        )?;
+        Ok(())
+    }
+
+    fn begin_digest(&mut self, id: i64) -> Result<(), StoreError> {
+        self.conn.execute(
+            "UPDATE digests SET state = 'sending' WHERE id = ?1 AND state = 'pending'",
+            params![id],
+        )?;
+        Ok(())
+    }
+
+    fn reclaim_interrupted(&mut self) -> Result<Vec<(String, String)>, StoreError> {
+        let tx = self.conn.transaction()?;
+        let found = {
+            let mut stmt = tx.prepare(
+                "SELECT notice_id, channel FROM deliveries WHERE state = 'sending'
+                 UNION ALL SELECT 'digest of ' || subscriber_id, 'email' FROM digests WHERE state = 'sending'",
+            )?;
+            let rows = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))?;
+            rows.collect::<Result<Vec<(String, String)>, _>>()?
+        };
+        tx.execute(
+            "UPDATE deliveries SET state = 'pending' WHERE state = 'sending'",
+            [],
+        )?;
+        tx.execute(
+            "UPDATE digests SET state = 'pending' WHERE state = 'sending'",
+            [],
+        )?;
+        tx.commit()?;
+        Ok(found)
     }
 
     fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
@@ -741,7 +801,7 @@ fn finish(c: &Connection, table: &str, id: i64, update: &DeliveryUpdate) -> Resu
             params![id, ms(*at)],
         )?,
         DeliveryUpdate::Retry { at, next, error } => c.execute(
-            &format!("UPDATE {table} SET attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), next_attempt_at = ?3, last_error = ?4 WHERE id = ?1"),
+            &format!("UPDATE {table} SET state = 'pending', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), next_attempt_at = ?3, last_error = ?4 WHERE id = ?1"),
             params![id, ms(*at), ms(*next), error],
         )?,
         DeliveryUpdate::Failed { at, error } => c.execute(

@@ -4,10 +4,11 @@ MIME reader for what it received (Python's email package).
 Serve:
   smtp_sink.py serve --port P --dir D [--fail-first N] [--reject-rcpt]
                [--tls-cert C --tls-key K [--implicit-tls]]
-               [--auth USER:PASSWORD]
+               [--auth USER:PASSWORD [--auth-without-tls]]
 
   Listens on 127.0.0.1:P. Each accepted message is written byte for byte to
-  D/NNNN.eml; each transaction (accepted or not) appends one JSON line to
+  D/NNNN.eml (numbering goes on after the files already in D); each
+  transaction (accepted or not) appends one JSON line to
   D/attempts.jsonl: {"stage", "code", "tls", "auth_user", "mail_from",
   "rcpt_tos"}. --fail-first N answers the first N DATA commands with
   "451 4.3.0" (RFC 5321 transient); --reject-rcpt answers every RCPT with
@@ -15,8 +16,9 @@ Serve:
   STARTTLS and refuses MAIL before it ("530"), or with --implicit-tls
   speaks TLS from the first byte (SMTPS); with --auth it offers AUTH
   PLAIN/LOGIN (after STARTTLS only, aiosmtpd's default) and accepts only
-  that user. Prints "ready" on stdout once listening; stops on SIGTERM or
-  when stdin closes.
+  that user (--auth-without-tls: also on a plain connection, for loopback
+  tests of a daemon that has no test CA). Prints "ready" on stdout once
+  listening; stops on SIGTERM or when stdin closes.
 
 Parse:
   smtp_sink.py parse FILE
@@ -45,7 +47,9 @@ def serve(args):
 
     os.makedirs(args.dir, exist_ok=True)
     lock = threading.Lock()
-    state = {"data_seen": 0, "saved": 0}
+    # A restarted sink (same folder) goes on numbering after what is there.
+    saved = len([n for n in os.listdir(args.dir) if n.endswith(".eml")])
+    state = {"data_seen": 0, "saved": saved}
 
     def log(server, session, envelope, stage, code):
         # session.ssl is set by STARTTLS; an implicit-TLS transport has an
@@ -119,6 +123,9 @@ def serve(args):
 
         kwargs["authenticator"] = authenticator
         kwargs["auth_required"] = True
+        if args.auth_without_tls:
+            # Loopback tests only: AUTH offered on a plain connection.
+            kwargs["auth_require_tls"] = False
 
     controller = Controller(
         Handler(),
@@ -222,6 +229,7 @@ def main():
     s.add_argument("--tls-key")
     s.add_argument("--implicit-tls", action="store_true")
     s.add_argument("--auth")
+    s.add_argument("--auth-without-tls", action="store_true")
     p = sub.add_parser("parse")
     p.add_argument("file")
     args = ap.parse_args()
