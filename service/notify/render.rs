@@ -242,6 +242,34 @@ pub fn render_email(notice: &Notice, ctx: &EmailContext<'_>) -> RenderedEmail {
     }
 }
 
+/// The words of a notice without the email around them: the subject line,
+/// the headline and the fact sentences, cleaned ([`header_safe`]) but not
+/// escaped. The status page (and the digest) word a notice with these, so
+/// that a notice reads the same everywhere.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct NoticeWords {
+    pub subject: String,
+    pub headline: String,
+    pub facts: Vec<String>,
+}
+
+/// [`NoticeWords`] of `notice` in `time_zone`; `chance_in_words` as in
+/// [`EmailContext`].
+pub fn notice_words(notice: &Notice, time_zone: Tz, chance_in_words: Option<&str>) -> NoticeWords {
+    let ctx = EmailContext {
+        time_zone,
+        chance_in_words,
+        status_url: None,
+        unsubscribe_url: "",
+    };
+    let m = Message::compose(notice, &ctx);
+    NoticeWords {
+        subject: header_safe(&m.subject),
+        headline: m.headline,
+        facts: m.facts,
+    }
+}
+
 /// The sentences of one notice, already cleaned, not yet escaped.
 struct Message {
     subject: String,
@@ -504,7 +532,7 @@ fn km(d: f64) -> String {
 
 /// A rate or expected count: one decimal from 1 up (whole from 10 up), one
 /// significant figure below 1: 0.4, 0.04, 2.5, 12.
-fn rate(r: f64) -> String {
+pub fn rate(r: f64) -> String {
     if r >= 10.0 {
         format!("{r:.0}")
     } else if r >= 1.0 {
@@ -590,6 +618,18 @@ mod tests {
             chance_in_words: None,
             status_url: Some("https://outrider.kellerby.example/status"),
             unsubscribe_url: "https://outrider.kellerby.example/u/TOKEN",
+        }
+    }
+
+    #[test]
+    fn notice_words_are_the_emails_own_sentences() {
+        let n = sample();
+        let w = notice_words(&n, SYDNEY, None);
+        let e = render_email(&n, &ctx());
+        assert_eq!(w.subject, e.subject);
+        assert!(e.text.starts_with(&format!("{}\n\n", w.headline)));
+        for f in &w.facts {
+            assert!(e.text.contains(f.as_str()), "{f}");
         }
     }
 
