@@ -149,6 +149,7 @@ where
             clock.clone(),
             OUTBOX_EVERY,
             outbox_stop.clone(),
+            counters.clone(),
         ))
     };
     tracing::info!(broker = %cfg.mqtt.url, state_dir = %cfg.service.state_dir.display(), sites = cfg.sites.sites.len(), subscribers = cfg.subscribers.len(), "outrider running");

@@ -17,8 +17,9 @@ use crate::deliver::webhook::{OutgoingWebhook, WebhookSender};
 use crate::deliver::DeliveryError;
 use crate::notify::token::{sign_token, Purpose, TokenKey};
 use crate::notify::{render_email, EmailContext, Notice, RetrySchedule};
-use crate::store::sqlite::{DeliveryUpdate, DueDelivery};
+use crate::store::sqlite::{unsubscribed_reason, DeliveryUpdate, DueDelivery};
 use crate::store::Store;
+use crate::telemetry::Counters;
 use chrono::{DateTime, Duration, Utc};
 use std::path::Path;
 use std::sync::Arc;
@@ -27,7 +28,7 @@ use tokio_util::sync::CancellationToken;
 /// Sender used when no `[smtp]` `from` is configured (the mail folder).
 const FOLDER_FROM: &str = "outrider <notices@outrider.invalid>";
 /// How long an unsubscribe or page link stays valid.
-const LINK_DAYS: i64 = 365;
+pub const LINK_DAYS: i64 = 365;
 
 /// How email leaves.
 pub enum EmailRoute {
@@ -97,6 +98,7 @@ pub fn link_key(state_dir: &Path) -> anyhow::Result<TokenKey> {
 }
 
 /// Runs until `stop` is cancelled, checking for due deliveries every `every`.
+#[allow(clippy::too_many_arguments)]
 pub async fn run(
     store: Store,
     cfg: Arc<Config>,
@@ -105,6 +107,7 @@ pub async fn run(
     clock: Arc<dyn Clock>,
     every: std::time::Duration,
     stop: CancellationToken,
+    counters: Arc<Counters>,
 ) {
     let schedule = RetrySchedule::default();
     loop {
@@ -125,12 +128,26 @@ pub async fn run(
             if stop.is_cancelled() {
                 break;
             }
-            let result = send(&cfg, &channels, &key, &d, clock.now()).await;
-            let at = clock.now();
-            let update = decide(&schedule, &d, result, at);
+            let update = match closed_instead(&d, clock.now()) {
+                Some(closed) => closed,
+                None => {
+                    let started = std::time::Instant::now();
+                    let result = send(&cfg, &channels, &key, &d, clock.now()).await;
+                    counters
+                        .delivery_attempt
+                        .observe(started.elapsed().as_secs_f64());
+                    decide(&schedule, &d, result, clock.now())
+                }
+            };
+            counters.count_delivery(&d.channel, outcome_name(&update));
             match &update {
-                DeliveryUpdate::Sent { .. } => {
+                DeliveryUpdate::Sent { at } => {
+                    let took = (*at - d.notice.at).num_milliseconds() as f64 / 1000.0;
+                    counters.notice_to_delivery.observe(took);
                     tracing::info!(notice = %d.notice.id(), channel = %d.channel, subscriber = %d.notice.subscriber_id, "Delivered")
+                }
+                DeliveryUpdate::Closed { reason, .. } => {
+                    tracing::info!(notice = %d.notice.id(), channel = %d.channel, subscriber = %d.notice.subscriber_id, %reason, "Delivery closed")
                 }
                 DeliveryUpdate::Retry { next, error, .. } => {
                     tracing::warn!(notice = %d.notice.id(), channel = %d.channel, %error, next = %next, "Delivery failed; will retry")
@@ -147,6 +164,27 @@ pub async fn run(
                 tracing::error!(delivery = id, "Could not record a delivery outcome");
             }
         }
+    }
+}
+
+/// A due delivery that must not be sent at all: email to a subscriber who
+/// has unsubscribed. Checked before every send, so a notice decided after
+/// the unsubscribe (its delivery row made by the pipeline) is closed too.
+pub fn closed_instead(d: &DueDelivery, at: DateTime<Utc>) -> Option<DeliveryUpdate> {
+    let since = d.unsubscribed_at?;
+    (d.channel == "email").then(|| DeliveryUpdate::Closed {
+        at,
+        reason: unsubscribed_reason(since),
+    })
+}
+
+/// The outcome's name in metrics.
+pub fn outcome_name(u: &DeliveryUpdate) -> &'static str {
+    match u {
+        DeliveryUpdate::Sent { .. } => "sent",
+        DeliveryUpdate::Retry { .. } => "retry",
+        DeliveryUpdate::Failed { .. } => "failed",
+        DeliveryUpdate::Closed { .. } => "closed",
     }
 }
 
@@ -213,6 +251,11 @@ async fn send(
                 now + Duration::days(LINK_DAYS),
             );
             let unsubscribe_url = format!("{}/unsubscribe/{token}", cfg.service.public_url);
+            // The "status page" link of a notice opens the subscriber's own
+            // page (their area and notices), which works on a public
+            // address where the coordinator's pages need a token.
+            let page = sign_token(key, Purpose::Page, &sub.id, now + Duration::days(LINK_DAYS));
+            let page_url = format!("{}/my/{page}", cfg.service.public_url);
             let chance = n
                 .evidence
                 .p_value
@@ -220,7 +263,7 @@ async fn send(
             let ctx = EmailContext {
                 time_zone: sub.timezone,
                 chance_in_words: chance.as_deref(),
-                status_url: Some(&cfg.service.public_url),
+                status_url: Some(&page_url),
                 unsubscribe_url: &unsubscribe_url,
             };
             let r = render_email(n, &ctx);
@@ -276,5 +319,47 @@ async fn send(
         other => Err(DeliveryError::permanent(format!(
             "unknown channel `{other}`"
         ))),
+    }
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)]
+mod tests {
+    use super::*;
+    use crate::notify::notice::tests::{sample, utc};
+
+    fn due(channel: &str, unsubscribed_at: Option<DateTime<Utc>>) -> DueDelivery {
+        DueDelivery {
+            id: 1,
+            channel: channel.into(),
+            attempts: 0,
+            first_attempt_at: None,
+            notice: sample(),
+            unsubscribed_at,
+        }
+    }
+
+    #[test]
+    fn email_to_an_unsubscribed_subscriber_is_closed_instead_of_sent() {
+        let at = utc(2025, 7, 15, 2, 0);
+        let since = utc(2025, 7, 15, 1, 0);
+        assert_eq!(
+            closed_instead(&due("email", Some(since)), at),
+            Some(DeliveryUpdate::Closed {
+                at,
+                reason: "not sent: the subscriber unsubscribed from email at 2025-07-15T01:00:00Z"
+                    .into()
+            })
+        );
+        assert_eq!(closed_instead(&due("email", None), at), None);
+        assert_eq!(
+            closed_instead(&due("webhook", Some(since)), at),
+            None,
+            "a machine feed set up by the operator is not an email list"
+        );
+        assert_eq!(
+            outcome_name(&closed_instead(&due("email", Some(since)), at).unwrap()),
+            "closed"
+        );
     }
 }
