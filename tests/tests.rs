@@ -12,3 +12,4 @@ mod ingest;
 mod notices;
 mod replay;
 mod util;
+mod web;
