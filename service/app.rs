@@ -1,9 +1,11 @@
 //! The one wiring place: starts the store, the optional embedded broker, the
 //! MQTT loop and the pipeline, and stops them in order.
 //!
-//! Shutdown order: stop reading MQTT -> the pipeline commits and
-//! acknowledges the batch in hand and exits -> the MQTT loop sends the last
-//! acknowledgements and disconnects -> the store checkpoints and exits last.
+//! Shutdown order: stop reading MQTT and stop taking web requests -> the
+//! pipeline commits and acknowledges the batch in hand and exits -> the
+//! MQTT loop sends the last acknowledgements and disconnects -> the outbox
+//! and the web server finish what they have in hand -> the store
+//! checkpoints and exits last.
 
 use crate::clock::Clock;
 use crate::config::Config;
@@ -78,6 +80,16 @@ where
     for w in &cfg.warnings {
         tracing::warn!(warning = %w, "Configuration");
     }
+    // Bind the status page first: a taken port stops the start before
+    // anything else has begun.
+    let web_listener = match cfg.web.listen {
+        Some(addr) => Some(
+            tokio::net::TcpListener::bind(addr)
+                .await
+                .with_context(|| format!("binding the status page to {addr} ([web] listen)"))?,
+        ),
+        None => None,
+    };
     if let Some(b) = &cfg.broker {
         start_embedded_broker(b)?;
         tracing::warn!(
@@ -149,21 +161,43 @@ where
         pipeline_done.clone(),
     ));
     let outbox_stop = CancellationToken::new();
+    let key = crate::outbox::link_key(&cfg.service.state_dir)?;
     let outbox_task = {
         let channels = crate::outbox::Channels::from_config(&cfg, Some(client_for_outbox))?;
-        let key = crate::outbox::link_key(&cfg.service.state_dir)?;
         tokio::spawn(crate::outbox::run(
             store.clone(),
             shared.clone(),
             channels,
-            key,
+            key.clone(),
             clock.clone(),
             OUTBOX_EVERY,
             crate::outbox::Concurrency::default(),
             wake_outbox.clone(),
             outbox_stop.clone(),
+            counters.clone(),
         ))
     };
+    let web_stop = CancellationToken::new();
+    let web_task = web_listener.map(|listener| {
+        let addr = listener
+            .local_addr()
+            .map(|a| a.to_string())
+            .unwrap_or_default();
+        let loopback = listener.local_addr().is_ok_and(|a| a.ip().is_loopback());
+        if !loopback && cfg.web.admin_token.is_none() {
+            tracing::warn!(listen = %addr, "Status page on an address other than loopback without [web] admin_token_env: the coordinator's pages and the API are off; unsubscribe links, subscriber pages and health checks are served");
+        }
+        tracing::info!(listen = %addr, url = %cfg.service.public_url, "Status page listening");
+        let web = crate::web::Web::new(
+            shared.clone(),
+            store.clone(),
+            counters.clone(),
+            clock.clone(),
+            key.clone(),
+            loopback,
+        );
+        tokio::spawn(crate::web::serve(listener, web, web_stop.clone()))
+    });
     tracing::info!(broker = %cfg.mqtt.url, state_dir = %cfg.service.state_dir.display(), sites = cfg.sites.sites.len(), subscribers = cfg.subscribers.len(), "outrider running");
     on_start(&Running {
         store: store.clone(),
@@ -174,6 +208,7 @@ where
     tracing::info!("Shutting down: finishing the batch in hand");
     stop_reading.cancel();
     outbox_stop.cancel();
+    web_stop.cancel();
     // The whole stop fits in shutdown_timeout_seconds (default 5 s): a task
     // that is still busy then is aborted; what it had in hand stays
     // unacknowledged (the broker redelivers) or pending (retried at start).
@@ -206,6 +241,16 @@ where
         tracing::warn!("A delivery in progress did not finish in time; it stays pending and is retried at the next start");
         outbox_task.abort();
         let _ = outbox_task.await;
+    }
+    if let Some(mut web_task) = web_task {
+        // Its handlers hold store handles: it must be gone before the store.
+        if tokio::time::timeout_at(deadline, &mut web_task)
+            .await
+            .is_err()
+        {
+            web_task.abort();
+            let _ = web_task.await;
+        }
     }
     drop(store);
     // The store thread exits once every handle is gone; wait for it off the runtime.

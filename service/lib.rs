@@ -33,6 +33,8 @@
 //! - [`pipeline`]: batches decoded messages into store commits, then acks.
 //! - [`deliver`]: the email (SMTP), mail-folder and webhook senders; each
 //!   says whether a failure is retriable.
+//! - [`web`]: the status page, JSON API, `/metrics`, health checks and
+//!   one-click unsubscribe (axum); its renderers are pure.
 //! - [`demo`]: the invented district's synthetic feed.
 //! - [`app`]: starts and stops the tasks in order.
 //! - [`backup`]: `outrider backup`, a checked online copy of the store.
@@ -70,6 +72,7 @@ pub mod status;
 pub mod store;
 pub mod telemetry;
 pub mod tools;
+pub mod web;
 
 /// Largest MQTT packet outrider reads off the wire. Larger than any payload
 /// limit so that an oversize message is rejected with a reason rather than

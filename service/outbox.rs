@@ -27,8 +27,9 @@ use crate::digest::render::{render_digest, DigestContext, CHART_CID};
 use crate::digest::Digest;
 use crate::notify::token::{sign_token, Purpose, TokenKey};
 use crate::notify::{render_email, EmailContext, Notice, RetrySchedule};
-use crate::store::sqlite::{DeliveryUpdate, DueDelivery, DueDigest};
+use crate::store::sqlite::{unsubscribed_reason, DeliveryUpdate, DueDelivery, DueDigest};
 use crate::store::Store;
+use crate::telemetry::Counters;
 use chrono::{DateTime, Duration, Utc};
 use std::path::Path;
 use std::sync::Arc;
@@ -37,7 +38,7 @@ use tokio_util::sync::CancellationToken;
 /// Sender used when no `[smtp]` `from` is configured (the mail folder).
 const FOLDER_FROM: &str = "outrider <notices@outrider.invalid>";
 /// How long an unsubscribe or page link stays valid.
-const LINK_DAYS: i64 = 365;
+pub const LINK_DAYS: i64 = 365;
 
 /// How email leaves.
 pub enum EmailRoute {
@@ -165,6 +166,7 @@ struct Shared {
     clock: Arc<dyn Clock>,
     schedule: RetrySchedule,
     stop: CancellationToken,
+    counters: Arc<Counters>,
 }
 
 /// Runs until `stop` is cancelled, checking for due deliveries and digests
@@ -182,6 +184,7 @@ pub async fn run(
     limits: Concurrency,
     wake: Arc<tokio::sync::Notify>,
     stop: CancellationToken,
+    counters: Arc<Counters>,
 ) {
     use std::collections::HashSet;
     use std::sync::Mutex;
@@ -195,6 +198,7 @@ pub async fn run(
         clock,
         schedule: retry,
         stop: stop.clone(),
+        counters,
     });
     let permits = |n: usize| Arc::new(Semaphore::new(n.max(1)));
     let (email, webhook, mqtt) = (
@@ -282,42 +286,18 @@ pub async fn run(
     while tasks.join_next().await.is_some() {}
 }
 
-/// One attempt: mark it under way, send, decide, record at once.
+/// One attempt: close it instead when its subscriber unsubscribed from
+/// email; else mark it under way, send, decide, record at once.
 async fn attempt(sh: &Shared, work: Work) {
     let (digest, id) = work.key();
-    let marked = sh
-        .store
-        .with(move |b| {
-            if digest {
-                b.begin_digest(id)
-            } else {
-                b.begin_delivery(id)
-            }
-        })
-        .await;
-    if !matches!(marked, Ok(Ok(()))) {
-        // Without the mark a crash could repeat it unnoticed: wait.
-        tracing::warn!(
-            delivery = id,
-            "Could not mark a delivery as under way; trying later"
-        );
-        return;
-    }
-    let now = sh.clock.now();
-    let (result, attempts, first) = match &work {
-        Work::Notice(d) => (
-            send(&sh.cfg, &sh.channels, &sh.key, d, now).await,
-            d.attempts,
-            d.first_attempt_at,
-        ),
-        Work::Digest(d) => (
-            send_digest(&sh.cfg, &sh.channels, &sh.key, &d.digest, now).await,
-            d.attempts,
-            d.first_attempt_at,
-        ),
+    let closed = match &work {
+        Work::Notice(d) => closed_instead(d, sh.clock.now()),
+        Work::Digest(d) => d.unsubscribed_at.map(|since| DeliveryUpdate::Closed {
+            at: sh.clock.now(),
+            reason: unsubscribed_reason(since),
+        }),
     };
-    let at = sh.clock.now();
-    let update = decide(&sh.schedule, attempts, first, result, at);
+    let channel = work.channel().to_string();
     let (what, subscriber) = match &work {
         Work::Notice(d) => (
             d.notice.id().as_str().to_string(),
@@ -325,10 +305,60 @@ async fn attempt(sh: &Shared, work: Work) {
         ),
         Work::Digest(d) => (d.digest.id(), d.digest.subscriber_id.clone()),
     };
-    let channel = work.channel().to_string();
+    let update = match closed {
+        Some(c) => c,
+        None => {
+            let marked = sh
+                .store
+                .with(move |b| {
+                    if digest {
+                        b.begin_digest(id)
+                    } else {
+                        b.begin_delivery(id)
+                    }
+                })
+                .await;
+            if !matches!(marked, Ok(Ok(()))) {
+                // Without the mark a crash could repeat it unnoticed: wait.
+                tracing::warn!(
+                    delivery = id,
+                    "Could not mark a delivery as under way; trying later"
+                );
+                return;
+            }
+            let now = sh.clock.now();
+            let started = std::time::Instant::now();
+            let (result, attempts, first) = match &work {
+                Work::Notice(d) => (
+                    send(&sh.cfg, &sh.channels, &sh.key, d, now).await,
+                    d.attempts,
+                    d.first_attempt_at,
+                ),
+                Work::Digest(d) => (
+                    send_digest(&sh.cfg, &sh.channels, &sh.key, &d.digest, now).await,
+                    d.attempts,
+                    d.first_attempt_at,
+                ),
+            };
+            sh.counters
+                .delivery_attempt
+                .observe(started.elapsed().as_secs_f64());
+            decide(&sh.schedule, attempts, first, result, sh.clock.now())
+        }
+    };
+    let metric_channel = if digest { "digest" } else { channel.as_str() };
+    sh.counters
+        .count_delivery(metric_channel, outcome_name(&update));
     match &update {
-        DeliveryUpdate::Sent { .. } => {
+        DeliveryUpdate::Sent { at } => {
+            if let Work::Notice(d) = &work {
+                let took = (*at - d.notice.at).num_milliseconds() as f64 / 1000.0;
+                sh.counters.notice_to_delivery.observe(took);
+            }
             tracing::info!(notice = %what, %channel, %subscriber, "Delivered")
+        }
+        DeliveryUpdate::Closed { reason, .. } => {
+            tracing::info!(notice = %what, %channel, %subscriber, %reason, "Delivery closed")
         }
         DeliveryUpdate::Retry { next, error, .. } => {
             tracing::warn!(notice = %what, %channel, %error, next = %next, "Delivery failed; will retry")
@@ -371,6 +401,27 @@ async fn record(
             _ = tokio::time::sleep(wait) => {}
         }
         wait = (wait * 2).min(std::time::Duration::from_secs(30));
+    }
+}
+
+/// A due delivery that must not be sent at all: email to a subscriber who
+/// has unsubscribed. Checked before every send, so a notice decided after
+/// the unsubscribe (its delivery row made by the pipeline) is closed too.
+pub fn closed_instead(d: &DueDelivery, at: DateTime<Utc>) -> Option<DeliveryUpdate> {
+    let since = d.unsubscribed_at?;
+    (d.channel == "email").then(|| DeliveryUpdate::Closed {
+        at,
+        reason: unsubscribed_reason(since),
+    })
+}
+
+/// The outcome's name in metrics.
+pub fn outcome_name(u: &DeliveryUpdate) -> &'static str {
+    match u {
+        DeliveryUpdate::Sent { .. } => "sent",
+        DeliveryUpdate::Retry { .. } => "retry",
+        DeliveryUpdate::Failed { .. } => "failed",
+        DeliveryUpdate::Closed { .. } => "closed",
     }
 }
 
@@ -549,6 +600,11 @@ async fn send(
                 ));
             };
             let unsubscribe_url = unsubscribe_url(cfg, key, sub, now);
+            // The "status page" link of a notice opens the subscriber's own
+            // page (their area and notices), which works on a public
+            // address where the coordinator's pages need a token.
+            let page = sign_token(key, Purpose::Page, &sub.id, now + Duration::days(LINK_DAYS));
+            let page_url = format!("{}/my/{page}", cfg.service.public_url);
             let chance = n
                 .evidence
                 .p_value
@@ -556,7 +612,7 @@ async fn send(
             let ctx = EmailContext {
                 time_zone: sub.timezone,
                 chance_in_words: chance.as_deref(),
-                status_url: Some(&cfg.service.public_url),
+                status_url: Some(&page_url),
                 unsubscribe_url: &unsubscribe_url,
             };
             let r = render_email(n, &ctx);
@@ -615,6 +671,7 @@ async fn send(
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)]
 mod tests {
     use super::*;
     use crate::notify::notice::tests::{sample, utc};
@@ -633,6 +690,7 @@ mod tests {
             attempts: 0,
             first_attempt_at: None,
             notice: sample(),
+            unsubscribed_at: None,
         };
         // 5 s, 10 s, 20 s, then 20 s: doubling to the cap.
         let mut at = first;
@@ -672,6 +730,41 @@ mod tests {
         assert_eq!(
             schedule(&crate::config::Delivery::default()),
             RetrySchedule::default()
+        );
+    }
+
+    fn due(channel: &str, unsubscribed_at: Option<DateTime<Utc>>) -> DueDelivery {
+        DueDelivery {
+            id: 1,
+            channel: channel.into(),
+            attempts: 0,
+            first_attempt_at: None,
+            notice: sample(),
+            unsubscribed_at,
+        }
+    }
+
+    #[test]
+    fn email_to_an_unsubscribed_subscriber_is_closed_instead_of_sent() {
+        let at = utc(2025, 7, 15, 2, 0);
+        let since = utc(2025, 7, 15, 1, 0);
+        assert_eq!(
+            closed_instead(&due("email", Some(since)), at),
+            Some(DeliveryUpdate::Closed {
+                at,
+                reason: "not sent: the subscriber unsubscribed from email at 2025-07-15T01:00:00Z"
+                    .into()
+            })
+        );
+        assert_eq!(closed_instead(&due("email", None), at), None);
+        assert_eq!(
+            closed_instead(&due("webhook", Some(since)), at),
+            None,
+            "a machine feed set up by the operator is not an email list"
+        );
+        assert_eq!(
+            outcome_name(&closed_instead(&due("email", Some(since)), at).unwrap()),
+            "closed"
         );
     }
 }

@@ -29,6 +29,9 @@ pub struct Inbound {
     /// The broker's packet, to acknowledge after commit (None when the
     /// message did not come from MQTT, e.g. in tests).
     pub publish: Option<rumqttc::Publish>,
+    /// When it was read off the connection (real time), for the
+    /// ingest-to-commit histogram.
+    pub arrived: std::time::Instant,
 }
 
 /// Where acknowledgements and `_rejected` reports go: acknowledgements to
@@ -142,10 +145,15 @@ pub async fn run(
             _ = ticker.tick() => {
                 // Time-driven checks (silent cameras).
                 let derived = engine.tick(clock.now());
+                if derived.is_empty() {
+                    continue;
+                }
                 let wake = derived.iter().any(queues_delivery);
-                if !derived.is_empty() && commit_until_done(&store, Vec::new(), derived, &counters).await.is_none() {
+                let counts = derived_counts(&derived);
+                if commit_until_done(&store, Vec::new(), derived, &counters).await.is_none() {
                     break;
                 }
+                counts.add_to(&counters);
                 if wake {
                     wake_outbox.notify_one();
                 }
@@ -177,6 +185,7 @@ pub async fn run(
             .count();
         let wake = derived.iter().any(queues_delivery);
         let started = std::time::Instant::now();
+        let derived_for_counts = derived_counts(&derived);
         let outcomes = commit_until_done(&store, ingests.clone(), derived, &counters).await;
         let Some(outcomes) = outcomes else {
             // The store stopped for good: leave everything unacknowledged.
@@ -184,6 +193,7 @@ pub async fn run(
             break;
         };
         counters.observe_commit(started.elapsed());
+        derived_for_counts.add_to(&counters);
         if wake {
             // Committed: the outbox can send now instead of at its next poll.
             wake_outbox.notify_one();
@@ -191,8 +201,12 @@ pub async fn run(
         if notices > 0 {
             tracing::debug!(notices, "Notice decisions committed");
         }
+        let committed = std::time::Instant::now();
         for ((m, ingest), outcome) in batch.drain(..).zip(ingests.iter()).zip(outcomes.iter()) {
             counters.count(ingest, outcome);
+            counters
+                .ingest_to_commit
+                .observe(committed.saturating_duration_since(m.arrived).as_secs_f64());
             if let Some(reply) = &reply {
                 let rejection = match (ingest, outcome) {
                     (Ingest::Rejected { rejection, .. }, _) => Some(rejection),
@@ -218,6 +232,46 @@ pub async fn run(
                     }
                 }
             }
+        }
+    }
+}
+
+/// What a commit's engine outputs add to the counters, worked out before
+/// the outputs move into the commit and added once it has succeeded.
+#[derive(Debug, Default)]
+struct DerivedCounts {
+    events_written: u64,
+    events_removed: u64,
+    /// (trigger, disposition) of each notice decision.
+    notices: Vec<(&'static str, &'static str)>,
+}
+
+fn derived_counts(derived: &[Output]) -> DerivedCounts {
+    let mut c = DerivedCounts::default();
+    for d in derived {
+        match d {
+            Output::EventUpsert(_) => c.events_written += 1,
+            Output::EventDelete(_) => c.events_removed += 1,
+            Output::Notice { notice, .. } => c
+                .notices
+                .push((notice.trigger.as_str(), notice.disposition.as_str())),
+            Output::Digest(_) => {}
+        }
+    }
+    c
+}
+
+impl DerivedCounts {
+    fn add_to(&self, counters: &Counters) {
+        use std::sync::atomic::Ordering::Relaxed;
+        counters
+            .events_written
+            .fetch_add(self.events_written, Relaxed);
+        counters
+            .events_removed
+            .fetch_add(self.events_removed, Relaxed);
+        for (t, d) in &self.notices {
+            counters.count_notice(t, d);
         }
     }
 }

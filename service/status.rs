@@ -87,12 +87,16 @@ pub fn render_text(s: &StatusCounts) -> String {
         out.push_str(&format!("  {d:<22}{n}\n"));
     }
     out.push_str(&format!("outbox pending        {}\n", s.outbox_pending));
-    for (what, counts) in [("deliveries", &s.deliveries), ("digests", &s.digests)] {
-        if !counts.is_empty() {
-            out.push_str(&format!("{what}\n"));
-            for (state, n) in counts {
-                out.push_str(&format!("  {state:<22}{n}\n"));
-            }
+    let deliveries: u64 = s.deliveries.values().sum();
+    out.push_str(&format!("deliveries            {deliveries}\n"));
+    // pending, sent, failed, and closed (not sent: the subscriber unsubscribed).
+    for (state, n) in &s.deliveries {
+        out.push_str(&format!("  {state:<22}{n}\n"));
+    }
+    if !s.digests.is_empty() {
+        out.push_str("digests\n");
+        for (state, n) in &s.digests {
+            out.push_str(&format!("  {state:<22}{n}\n"));
         }
     }
     out.push_str(&format!("deployments silent    {}\n", s.deployments_silent));

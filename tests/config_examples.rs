@@ -18,7 +18,10 @@ fn every_example_passes_check() {
                 .env("OUTRIDER_SMTP_PASSWORD", "example")
                 .env("OUTRIDER_HOOK_SECRET", "example")
                 .env("OUTRIDER_MQTT_PASSWORD", "example")
-                .env("OUTRIDER_ADMIN_TOKEN", "example")
+                .env(
+                    "OUTRIDER_ADMIN_TOKEN",
+                    "example-admin-token-0123456789abcdef",
+                )
                 .output()
                 .unwrap();
             let stdout = String::from_utf8_lossy(&out.stdout);

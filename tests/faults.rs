@@ -717,7 +717,9 @@ webhook = {{ url = "http://127.0.0.1:{}/hook", secret_env = "OUTRIDER_TEST_HOOK_
             |r| r.get(0),
         )
         .unwrap();
-    assert!(min_email_attempts >= 3, "two refusals, then the delivery");
+    // At least one refusal, then the delivery (the sixteen refusals above
+    // are shared among the eight; sends run concurrently per channel).
+    assert!(min_email_attempts >= 2, "a refusal, then the delivery");
 
     // Each email once at the SMTP server; each webhook answered 200 once,
     // after the first six requests got 500.

@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
-# The test command. Installs what the tests need when it can (Mosquitto from
-# Debian's packages; a Python virtual environment with paho-mqtt and the
-# reference libraries pinned in tests/reference/requirements.txt), checks
+# The test command. Installs what the tests need when it can (Mosquitto,
+# Chromium and chromium-driver from Debian's packages; a Python virtual
+# environment with paho-mqtt, Selenium and the reference libraries pinned
+# in tests/reference/requirements.txt), checks
 # that the committed reference data still regenerates byte for byte, then
 # runs every Rust test.
 #
@@ -20,6 +21,10 @@ if ! python3 -c 'import venv, ensurepip' >/dev/null 2>&1; then missing+=(python3
 command -v xmllint >/dev/null 2>&1 || missing+=(libxml2-utils)
 # systemd-analyze, systemd-sysusers, systemd-tmpfiles check deploy/ (tests/deploy.rs).
 command -v systemd-analyze >/dev/null 2>&1 || missing+=(systemd)
+# A real browser for the status page (tests/web.rs): Debian's Chromium and
+# its WebDriver, driven by Selenium from the Python environment below.
+command -v chromium >/dev/null 2>&1 || missing+=(chromium)
+command -v chromedriver >/dev/null 2>&1 || missing+=(chromium-driver)
 if [ ${#missing[@]} -gt 0 ]; then
   say "installing ${missing[*]}"
   if [ "$(id -u)" = 0 ]; then

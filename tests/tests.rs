@@ -17,3 +17,4 @@ mod notices;
 mod replay;
 mod secrets;
 mod util;
+mod web;

@@ -207,9 +207,15 @@ pub struct Smtp {
     pub unsubscribe_mailto: Option<String>,
 }
 
+/// `[web]`: the status page, JSON API, `/metrics` and unsubscribe links
+/// (service/web/, docs/web.md).
 #[derive(Debug, Clone)]
 pub struct Web {
-    pub listen: SocketAddr,
+    /// Where to serve; `None` (no `listen` key) serves nothing.
+    pub listen: Option<SocketAddr>,
+    /// The bearer token the coordinator's pages and the API need when
+    /// `listen` is not a loopback address (`admin_token_env` or
+    /// `admin_token_file`).
     pub admin_token: Option<Secret>,
 }
 
@@ -1274,7 +1280,7 @@ fn read_smtp(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>)
 
 fn read_web(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) -> Option<Web> {
     let mut out = Web {
-        listen: SocketAddr::from(([127, 0, 0, 1], 8080)),
+        listen: None,
         admin_token: None,
     };
     let Some(mut t) = w.table(top, "web") else {
@@ -1283,7 +1289,7 @@ fn read_web(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) 
     let mut ok = true;
     if let Some(l) = w.str(&mut t, "listen") {
         match l.value.parse::<SocketAddr>() {
-            Ok(a) => out.listen = a,
+            Ok(a) => out.listen = Some(a),
             Err(_) => {
                 w.error(
                     &l.span,
@@ -1296,9 +1302,40 @@ fn read_web(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) 
         }
     }
     out.admin_token = read_secret(w, &mut t, "admin_token", files);
+    if let Some(token) = &out.admin_token {
+        // A bearer token is compared as sent: one that could be guessed in
+        // a few tries protects nothing, and it must fit in a header.
+        let problem = if token.expose().len() < MIN_ADMIN_TOKEN_BYTES {
+            Some(format!(
+                "the admin token is {} bytes; at least {MIN_ADMIN_TOKEN_BYTES} are needed",
+                token.expose().len()
+            ))
+        } else if token.expose().bytes().any(|b| !(0x21..=0x7e).contains(&b)) {
+            Some("the admin token must be printable ASCII without spaces (it travels in an Authorization header)".into())
+        } else {
+            None
+        };
+        let key = if t.has("admin_token_env") {
+            "admin_token_env"
+        } else {
+            "admin_token_file"
+        };
+        if let (Some(message), Some(node)) = (problem, t.map.get(key)) {
+            w.error(
+                &node.span(),
+                &format!("web.{key}"),
+                message,
+                Some("make one with: openssl rand -hex 32".into()),
+            );
+            ok = false;
+        }
+    }
     w.finish(t, &["listen", "admin_token_env", "admin_token_file"]);
     ok.then_some(out)
 }
+
+/// Shortest admin token accepted (bytes): 16 random bytes written as hex.
+pub const MIN_ADMIN_TOKEN_BYTES: usize = 32;
 
 struct SubscriberDefaults<'a> {
     timezone: Tz,

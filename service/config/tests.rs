@@ -563,3 +563,49 @@ fn world_readable_secrets_are_warned_about_and_private_ones_are_not() {
     let plain = parse_with(GOOD, &[]).unwrap();
     assert!(permission_warnings(&plain, &modes(0o644)).is_empty());
 }
+
+#[test]
+fn web_serves_only_when_listen_is_set_and_takes_an_admin_token_from_the_environment() {
+    let cfg = parse_with(GOOD, &[]).unwrap();
+    assert_eq!(cfg.web.listen, None, "no [web] listen: nothing served");
+    let token = "0123456789abcdef0123456789abcdef";
+    let src = format!(
+        "{GOOD}\n[web]\nlisten = \"0.0.0.0:8080\"\nadmin_token_env = \"OUTRIDER_ADMIN_TOKEN\"\n"
+    );
+    let cfg = parse_with(&src, &[("OUTRIDER_ADMIN_TOKEN", token)]).unwrap();
+    assert_eq!(cfg.web.listen, Some("0.0.0.0:8080".parse().unwrap()));
+    assert_eq!(
+        cfg.web.admin_token.as_ref().map(Secret::expose),
+        Some(token)
+    );
+    assert!(!format!("{:?}", cfg.web).contains(token), "never printed");
+}
+
+#[test]
+fn a_short_or_missing_admin_token_is_reported_at_its_line() {
+    // Appended after GOOD, whose last line is line 29 of the text.
+    let lines = GOOD.lines().count();
+    let src = format!(
+        "{GOOD}[web]\nlisten = \"0.0.0.0:8080\"\nadmin_token_env = \"OUTRIDER_ADMIN_TOKEN\"\n"
+    );
+    let errs = match parse_with(&src, &[("OUTRIDER_ADMIN_TOKEN", "short")]) {
+        Ok(_) => panic!("a 5-byte token must be refused"),
+        Err(e) => e.0,
+    };
+    assert_eq!(errs.len(), 1, "{errs:?}");
+    assert_eq!(errs[0].key, "web.admin_token_env");
+    assert_eq!(errs[0].line, lines + 3, "{}", errs[0]);
+    assert!(errs[0].message.contains("at least 32"), "{}", errs[0]);
+    assert!(errs[0].hint.is_some());
+    // Unset variable: the general secret rule, also with its line.
+    let errs = match parse_with(&src, &[]) {
+        Ok(_) => panic!("an unset variable must be refused"),
+        Err(e) => e.0,
+    };
+    assert!(errs[0].message.contains("is not set"), "{}", errs[0]);
+    assert_eq!(errs[0].line, lines + 3);
+    // A bad address.
+    let errs = errors(&format!("{GOOD}[web]\nlisten = \"localhost\"\n"));
+    assert_eq!(errs[0].key, "web.listen");
+    assert_eq!(errs[0].line, lines + 2);
+}

@@ -224,6 +224,10 @@ pub async fn run(opts: DemoOptions, real_now: DateTime<Utc>) -> anyhow::Result<(
         "  mail:    {} (one .eml file per email; open with any mail program)",
         dir.join("mail").display()
     );
+    println!(
+        "  status:  http://{}/ (map, notices, sites; JSON under /api/, metrics at /metrics)",
+        opts.web
+    );
     let prefix_for_history = cfg.mqtt.topic_prefix.clone();
     let history_cfg = cfg.clone();
     let loaded = tokio::task::spawn_blocking(move || {

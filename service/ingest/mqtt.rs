@@ -175,7 +175,7 @@ pub async fn run(
                 }
                 Ok(Event::Incoming(Packet::Publish(p))) => {
                     if tx.is_some() {
-                        held.push_back(Inbound { topic: p.topic.clone(), payload: p.payload.clone(), publish: Some(p) });
+                        held.push_back(Inbound { topic: p.topic.clone(), payload: p.payload.clone(), publish: Some(p), arrived: std::time::Instant::now() });
                     }
                 }
                 Ok(_) => {}

@@ -531,7 +531,7 @@ fn km(d: f64) -> String {
 
 /// A rate or expected count: one decimal from 1 up (whole from 10 up), one
 /// significant figure below 1: 0.4, 0.04, 2.5, 12.
-fn rate(r: f64) -> String {
+pub fn rate(r: f64) -> String {
     if r >= 10.0 {
         format!("{r:.0}")
     } else if r >= 1.0 {
@@ -617,6 +617,18 @@ mod tests {
             chance_in_words: None,
             status_url: Some("https://outrider.kellerby.example/status"),
             unsubscribe_url: "https://outrider.kellerby.example/u/TOKEN",
+        }
+    }
+
+    #[test]
+    fn notice_words_are_the_emails_own_sentences() {
+        let n = sample();
+        let w = notice_words(&n, SYDNEY, None);
+        let e = render_email(&n, &ctx());
+        assert_eq!(w.subject, e.subject);
+        assert!(e.text.starts_with(&format!("{}\n\n", w.headline)));
+        for f in &w.facts {
+            assert!(e.text.contains(f.as_str()), "{f}");
         }
     }
 

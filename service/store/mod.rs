@@ -160,6 +160,14 @@ pub trait Backend: Send + 'static {
     fn last_digests(
         &mut self,
     ) -> Result<std::collections::HashMap<String, DateTime<Utc>>, StoreError>;
+    /// Records that a subscriber wants no more email and closes their
+    /// pending email deliveries ([`sqlite::Sqlite::unsubscribe`]).
+    fn unsubscribe(
+        &mut self,
+        subscriber_id: &str,
+        at: DateTime<Utc>,
+        via: &str,
+    ) -> Result<sqlite::Unsubscribed, StoreError>;
     /// Flushes what can be flushed before the process exits.
     fn close(&mut self) -> Result<(), StoreError>;
 }

@@ -14,6 +14,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
     ("0001_init", include_str!("migrations/0001_init.sql")),
     ("0002_derived", include_str!("migrations/0002_derived.sql")),
     ("0003_digests", include_str!("migrations/0003_digests.sql")),
+    (
+        "0004_unsubscribes",
+        include_str!("migrations/0004_unsubscribes.sql"),
+    ),
 ];
 
 /// How hard SQLite works to keep a commit on disk.
@@ -616,6 +620,15 @@ impl Backend for Sqlite {
         Sqlite::last_digests(self)
     }
 
+    fn unsubscribe(
+        &mut self,
+        subscriber_id: &str,
+        at: DateTime<Utc>,
+        via: &str,
+    ) -> Result<Unsubscribed, StoreError> {
+        Sqlite::unsubscribe(self, subscriber_id, at, via)
+    }
+
     fn close(&mut self) -> Result<(), StoreError> {
         // Fold the WAL back into the main file so a copy of outrider.db alone
         // is a complete backup after a clean stop.
@@ -659,6 +672,28 @@ pub struct DueDelivery {
     pub attempts: u32,
     pub first_attempt_at: Option<DateTime<Utc>>,
     pub notice: crate::notify::Notice,
+    /// When the notice's subscriber asked for no more email, if they did.
+    pub unsubscribed_at: Option<DateTime<Utc>>,
+}
+
+/// What [`Sqlite::unsubscribe`] did.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Unsubscribed {
+    /// When the subscriber's unsubscribe was first recorded (an earlier
+    /// request stands; a repeated one changes nothing).
+    pub since: DateTime<Utc>,
+    /// True when this call recorded it; false when it was already there.
+    pub new: bool,
+    /// Pending email deliveries closed by this call.
+    pub closed: u64,
+}
+
+/// The `last_error` text of an email delivery closed by an unsubscribe.
+pub fn unsubscribed_reason(since: DateTime<Utc>) -> String {
+    format!(
+        "not sent: the subscriber unsubscribed from email at {}",
+        since.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)
+    )
 }
 
 /// A digest that is due to be sent.
@@ -668,6 +703,9 @@ pub struct DueDigest {
     pub attempts: u32,
     pub first_attempt_at: Option<DateTime<Utc>>,
     pub digest: crate::digest::Digest,
+    /// When the subscriber unsubscribed from email, if they did: the digest
+    /// is then closed, not sent.
+    pub unsubscribed_at: Option<DateTime<Utc>>,
 }
 
 /// What became of one attempt.
@@ -685,6 +723,12 @@ pub enum DeliveryUpdate {
         at: DateTime<Utc>,
         error: String,
     },
+    /// Not to be sent at all (the subscriber unsubscribed): state `closed`,
+    /// the reason kept in `last_error`. Not an attempt.
+    Closed {
+        at: DateTime<Utc>,
+        reason: String,
+    },
 }
 
 impl Sqlite {
@@ -695,7 +739,8 @@ impl Sqlite {
         limit: usize,
     ) -> Result<Vec<DueDelivery>, StoreError> {
         let mut stmt = self.conn.prepare_cached(
-            "SELECT d.id, d.channel, d.attempts, d.first_attempt_at, n.notice FROM deliveries d JOIN notices n ON n.id = d.notice_id
+            "SELECT d.id, d.channel, d.attempts, d.first_attempt_at, n.notice, u.at FROM deliveries d JOIN notices n ON n.id = d.notice_id
+             LEFT JOIN unsubscribes u ON u.subscriber_id = n.subscriber_id
              WHERE d.state = 'pending' AND d.next_attempt_at <= ?1 ORDER BY d.next_attempt_at, d.id LIMIT ?2",
         )?;
         let rows = stmt.query_map(params![ms(now), limit as i64], |r| {
@@ -705,11 +750,12 @@ impl Sqlite {
                 r.get::<_, i64>(2)?,
                 r.get::<_, Option<i64>>(3)?,
                 r.get::<_, String>(4)?,
+                r.get::<_, Option<i64>>(5)?,
             ))
         })?;
         let mut out = Vec::new();
         for row in rows {
-            let (id, channel, attempts, first, notice) = row?;
+            let (id, channel, attempts, first, notice, unsubscribed) = row?;
             match serde_json::from_str(&notice) {
                 Ok(notice) => out.push(DueDelivery {
                     id,
@@ -717,6 +763,7 @@ impl Sqlite {
                     attempts: attempts.max(0) as u32,
                     first_attempt_at: first.map(from_ms),
                     notice,
+                    unsubscribed_at: unsubscribed.map(from_ms),
                 }),
                 Err(e) => {
                     // Written by this program, so this means a damaged row:
@@ -738,8 +785,9 @@ impl Sqlite {
         limit: usize,
     ) -> Result<Vec<DueDigest>, StoreError> {
         let mut stmt = self.conn.prepare_cached(
-            "SELECT id, attempts, first_attempt_at, body FROM digests
-             WHERE state = 'pending' AND next_attempt_at <= ?1 ORDER BY next_attempt_at, id LIMIT ?2",
+            "SELECT g.id, g.attempts, g.first_attempt_at, g.body, u.at FROM digests g
+             LEFT JOIN unsubscribes u ON u.subscriber_id = g.subscriber_id
+             WHERE g.state = 'pending' AND g.next_attempt_at <= ?1 ORDER BY g.next_attempt_at, g.id LIMIT ?2",
         )?;
         let rows = stmt
             .query_map(params![ms(now), limit as i64], |r| {
@@ -748,18 +796,20 @@ impl Sqlite {
                     r.get::<_, i64>(1)?,
                     r.get::<_, Option<i64>>(2)?,
                     r.get::<_, String>(3)?,
+                    r.get::<_, Option<i64>>(4)?,
                 ))
             })?
             .collect::<rusqlite::Result<Vec<_>>>()?;
         drop(stmt);
         let mut out = Vec::new();
-        for (id, attempts, first, body) in rows {
+        for (id, attempts, first, body, unsubscribed) in rows {
             match serde_json::from_str(&body) {
                 Ok(digest) => out.push(DueDigest {
                     id,
                     attempts: attempts.max(0) as u32,
                     first_attempt_at: first.map(from_ms),
                     digest,
+                    unsubscribed_at: unsubscribed.map(from_ms),
                 }),
                 Err(e) => {
                     self.conn.execute(
@@ -790,6 +840,36 @@ impl Sqlite {
     pub fn finish_delivery(&mut self, id: i64, update: &DeliveryUpdate) -> Result<(), StoreError> {
         finish(&self.conn, "deliveries", id, update)
     }
+
+    /// Records that `subscriber_id` wants no more email and, in the same
+    /// transaction, closes their pending email deliveries (state `closed`,
+    /// reason in `last_error`). Repeating it changes nothing: the first
+    /// request's time stands.
+    pub fn unsubscribe(
+        &mut self,
+        subscriber_id: &str,
+        at: DateTime<Utc>,
+        via: &str,
+    ) -> Result<Unsubscribed, StoreError> {
+        let tx = self.conn.transaction()?;
+        let new = tx.execute(
+            "INSERT INTO unsubscribes (subscriber_id, at, via) VALUES (?1, ?2, ?3) ON CONFLICT (subscriber_id) DO NOTHING",
+            params![subscriber_id, ms(at), via],
+        )? == 1;
+        let since = from_ms(tx.query_row(
+            "SELECT at FROM unsubscribes WHERE subscriber_id = ?1",
+            params![subscriber_id],
+            |r| r.get::<_, i64>(0),
+        )?);
+        let closed = tx.execute(
+            "UPDATE deliveries SET state = 'closed', done_at = ?2, last_error = ?3
+             WHERE state = 'pending' AND channel = 'email'
+               AND notice_id IN (SELECT id FROM notices WHERE subscriber_id = ?1)",
+            params![subscriber_id, ms(at), unsubscribed_reason(since)],
+        )? as u64;
+        tx.commit()?;
+        Ok(Unsubscribed { since, new, closed })
+    }
 }
 
 /// Records an attempt's outcome in `table` (deliveries or digests: the
@@ -808,6 +888,135 @@ fn finish(c: &Connection, table: &str, id: i64, update: &DeliveryUpdate) -> Resu
             &format!("UPDATE {table} SET state = 'failed', attempts = attempts + 1, first_attempt_at = coalesce(first_attempt_at, ?2), done_at = ?2, last_error = ?3 WHERE id = ?1"),
             params![id, ms(*at), error],
         )?,
+        DeliveryUpdate::Closed { at, reason } => c.execute(
+            &format!("UPDATE {table} SET state = 'closed', done_at = ?2, last_error = ?3 WHERE id = ?1"),
+            params![id, ms(*at), reason],
+        )?,
     };
     Ok(())
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)]
+mod tests {
+    use super::*;
+    use crate::config::Channel;
+    use crate::notify::notice::tests::sample;
+
+    fn notice_output(event: &str, subscriber: &str) -> Output {
+        let mut n = sample();
+        n.event_id = event.into();
+        n.subscriber_id = subscriber.into();
+        Output::Notice {
+            notice: Box::new(n),
+            reason: "first of its kind".into(),
+            channels: vec![Channel::Email, Channel::Webhook],
+        }
+    }
+
+    fn states(db: &Sqlite) -> Vec<(String, String, String)> {
+        let mut stmt = db
+            .connection()
+            .prepare("SELECT n.subscriber_id, d.channel, d.state FROM deliveries d JOIN notices n ON n.id = d.notice_id ORDER BY n.subscriber_id, n.event_id, d.channel")
+            .unwrap();
+        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .unwrap()
+            .map(Result::unwrap)
+            .collect()
+    }
+
+    #[test]
+    fn an_unsubscribe_closes_that_subscribers_pending_email_and_nothing_else() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut db = Sqlite::open(dir.path(), Durability::Normal).unwrap();
+        db.commit(
+            &[],
+            &[
+                notice_output("e1", "stonecroft"),
+                notice_output("e2", "bellbird"),
+            ],
+        )
+        .unwrap();
+        let at = crate::notify::notice::tests::utc(2025, 7, 15, 1, 0);
+        let u = db.unsubscribe("stonecroft", at, "one-click").unwrap();
+        assert_eq!(
+            u,
+            Unsubscribed {
+                since: at,
+                new: true,
+                closed: 1
+            }
+        );
+        assert_eq!(
+            states(&db),
+            vec![
+                ("bellbird".into(), "email".into(), "pending".into()),
+                ("bellbird".into(), "webhook".into(), "pending".into()),
+                ("stonecroft".into(), "email".into(), "closed".into()),
+                ("stonecroft".into(), "webhook".into(), "pending".into()),
+            ]
+        );
+        let reason: String = db
+            .connection()
+            .query_row(
+                "SELECT last_error FROM deliveries WHERE state = 'closed'",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert_eq!(
+            reason,
+            "not sent: the subscriber unsubscribed from email at 2025-07-15T01:00:00Z"
+        );
+        // A second request changes nothing; the first time stands.
+        let later = at + chrono::Duration::hours(2);
+        let again = db.unsubscribe("stonecroft", later, "page").unwrap();
+        assert_eq!((again.since, again.new, again.closed), (at, false, 0));
+        // A notice decided after the unsubscribe still gets its rows (the
+        // pipeline does not know); the outbox sees who unsubscribed.
+        db.commit(&[], &[notice_output("e3", "stonecroft")])
+            .unwrap();
+        let due = db
+            .due_deliveries(later + chrono::Duration::days(400), 10)
+            .unwrap();
+        let of = |sub: &str, ch: &str| {
+            due.iter()
+                .find(|d| d.notice.subscriber_id == sub && d.channel == ch)
+                .map(|d| d.unsubscribed_at)
+        };
+        assert_eq!(of("stonecroft", "email"), Some(Some(at)));
+        assert_eq!(of("bellbird", "email"), Some(None));
+        // The closed row is not due again.
+        assert_eq!(due.len(), 5, "3 webhooks + bellbird's and e3's email");
+    }
+
+    #[test]
+    fn status_counts_closed_deliveries_by_their_state() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut db = Sqlite::open(dir.path(), Durability::Normal).unwrap();
+        db.commit(&[], &[notice_output("e1", "stonecroft")])
+            .unwrap();
+        db.unsubscribe("stonecroft", sample().at, "one-click")
+            .unwrap();
+        let s = db.status().unwrap();
+        assert_eq!(s.deliveries.get("closed"), Some(&1));
+        assert_eq!(s.outbox_pending, 1, "the webhook is still pending");
+    }
+
+    #[test]
+    fn migrations_apply_in_list_order_and_a_read_only_open_sees_the_table() {
+        let dir = tempfile::tempdir().unwrap();
+        drop(Sqlite::open(dir.path(), Durability::Normal).unwrap());
+        let ro = Sqlite::open_read_only(dir.path()).unwrap();
+        let v: i64 = ro
+            .connection()
+            .pragma_query_value(None, "user_version", |r| r.get(0))
+            .unwrap();
+        assert_eq!(v, MIGRATIONS.len() as i64);
+        let n: i64 = ro
+            .connection()
+            .query_row("SELECT count(*) FROM unsubscribes", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(n, 0);
+    }
 }
