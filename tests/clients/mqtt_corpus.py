@@ -82,9 +82,12 @@ def main() -> int:
     # and sends it on reconnecting. `_published` (paho 2.2.0, pinned) is
     # what wait_for_publish itself waits on: set when the PUBACK arrives.
     for info in infos:
-        with info._condition:
-            while not info._published and time.monotonic() < deadline:
-                info._condition.wait(0.1)
+        try:
+            info.wait_for_publish(max(0.1, deadline - time.monotonic()))
+        except (RuntimeError, ValueError):
+            with info._condition:
+                while not info._published and time.monotonic() < deadline:
+                    info._condition.wait(0.1)
     published = sum(1 for i in infos if i._published)
 
     while time.monotonic() < deadline:
