@@ -114,6 +114,7 @@ pub fn router(web: Web) -> Router {
             "/unsubscribe/{token}",
             get(unsubscribe_question).post(unsubscribe),
         )
+        .route("/api/report.csv", get(api_report_csv))
         .route("/metrics", get(metrics_text))
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
@@ -406,6 +407,65 @@ async fn api_rejected(
     match rejected_data(&w, &headers, q, true).await {
         Ok(v) => json(StatusCode::OK, &v),
         Err(r) => r,
+    }
+}
+
+/// Query of `/api/report.csv`: `by=day|week|month` (default day), and
+/// optional RFC 3339 `from` and `to`.
+#[derive(Debug, serde::Deserialize)]
+struct ReportQuery {
+    by: Option<String>,
+    from: Option<String>,
+    to: Option<String>,
+}
+
+/// Counts, camera-nights and RAI per site, species and period as CSV (the
+/// rows of `outrider report`).
+async fn api_report_csv(
+    State(w): State<Shared>,
+    headers: HeaderMap,
+    RawQuery(q): RawQuery,
+) -> Response {
+    use crate::interchange::report::{Period, ReportSpec};
+    if let Err(r) = coordinator(&w, &headers, true) {
+        return r;
+    }
+    let bad = |m: String| error(true, StatusCode::BAD_REQUEST, "Bad request", &m);
+    let q: ReportQuery = match serde_urlencoded::from_str(q.as_deref().unwrap_or("")) {
+        Ok(q) => q,
+        Err(e) => return bad(format!("bad query: {e}")),
+    };
+    let by = match q.by.as_deref().unwrap_or("day") {
+        "day" => Period::Day,
+        "week" => Period::Week,
+        "month" => Period::Month,
+        other => return bad(format!("by={other:?}: use day, week or month")),
+    };
+    let (from, to) = match crate::report::window(q.from.as_deref(), q.to.as_deref()) {
+        Ok(w) => w,
+        Err(e) => return bad(format!("{e:#}")),
+    };
+    let spec = ReportSpec { by, from, to };
+    let now = w.clock.now();
+    let w2 = w.clone();
+    let made = tokio::task::spawn_blocking(move || {
+        let history = crate::report::read_history(&w2.cfg)?;
+        Ok::<_, anyhow::Error>(crate::interchange::report_csv(
+            &w2.cfg, &history, &spec, now,
+        )?)
+    })
+    .await;
+    match made {
+        Ok(Ok(csv)) => secure(
+            (
+                StatusCode::OK,
+                [(header::CONTENT_TYPE, "text/csv; charset=utf-8")],
+                csv,
+            )
+                .into_response(),
+        ),
+        Ok(Err(e)) => unavailable(true, &format!("{e:#}")),
+        Err(e) => unavailable(true, &e.to_string()),
     }
 }
 
