@@ -21,7 +21,8 @@ const MQTT_PW: &str = "mqtt-Pw-3f9a1c";
 const SMTP_PW: &str = "smtp-Pw-77b2e0";
 const HOOK_SECRET: &str = "hook-Secret-c41d";
 const URL_TOKEN: &str = "url-Token-9e8f";
-const ADMIN_TOKEN: &str = "admin-Token-05aa";
+// At least 32 bytes: the config refuses a shorter admin token.
+const ADMIN_TOKEN: &str = "admin-Token-05aa-7c1e9d3b40f26a58e0";
 
 /// Each secret and the forms it travels in.
 fn forms() -> Vec<(String, &'static str)> {
