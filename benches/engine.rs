@@ -626,14 +626,26 @@ area = { lat = -31.6, lon = 148.1, radius_km = 5.0 }
   channels = ["email"]
 "#;
     let mut cfg = config(&sites, template);
-    let proto = cfg.subscribers[0].clone();
     let half = (BIG_SIDE as f64 - 1.0) * BIG_SPACING_KM / 2.0;
-    let mut rng = SmallRng::seed_from_u64(4);
-    cfg.subscribers = (0..n)
+    cfg.subscribers = circle_subscribers(&cfg.subscribers[0], n, half, 1.0..20.0, 4);
+    cfg
+}
+
+/// `n` copies of `proto`, each with its own id, address and a circle of
+/// radius in `radius_km` centred at random within `half` km of the centre.
+fn circle_subscribers(
+    proto: &outrider::config::Subscriber,
+    n: usize,
+    half: f64,
+    radius_km: std::ops::Range<f64>,
+    seed: u64,
+) -> Vec<outrider::config::Subscriber> {
+    let mut rng = SmallRng::seed_from_u64(seed);
+    (0..n)
         .map(|i| {
             let mut s = proto.clone();
             let (lat, lon) = offset(rng.gen_range(-half..half), rng.gen_range(-half..half));
-            let radius_km = rng.gen_range(1.0..20.0);
+            let radius_km = rng.gen_range(radius_km.clone());
             s.id = format!("sub-{i:07}");
             s.email = Some(format!("sub{i}@land.example"));
             s.area_spec = AreaSpec::Circle {
@@ -645,8 +657,7 @@ area = { lat = -31.6, lon = 148.1, radius_km = 5.0 }
             s.area = Area::Circle(Circle::new(centre, radius_km).expect("radius in range"));
             s
         })
-        .collect();
-    cfg
+        .collect()
 }
 
 /// Site in the middle of the big grid (no edge effects).
@@ -942,26 +953,8 @@ area = { lat = -31.6, lon = 148.1, radius_km = 5.0 }
   channels = ["email"]
 "#;
     let mut cfg = config(&sites, template);
-    let proto = cfg.subscribers[0].clone();
     let half = (NET_SIDE as f64 - 1.0) * NET_SPACING_KM / 2.0;
-    let mut rng = SmallRng::seed_from_u64(5);
-    cfg.subscribers = (0..n)
-        .map(|i| {
-            let mut s = proto.clone();
-            let (lat, lon) = offset(rng.gen_range(-half..half), rng.gen_range(-half..half));
-            let radius_km = rng.gen_range(1.0..8.0);
-            s.id = format!("sub-{i:07}");
-            s.email = Some(format!("sub{i}@land.example"));
-            s.area_spec = AreaSpec::Circle {
-                lat,
-                lon,
-                radius_km,
-            };
-            let centre = LatLon::new(lat, lon).expect("inside the district");
-            s.area = Area::Circle(Circle::new(centre, radius_km).expect("radius in range"));
-            s
-        })
-        .collect();
+    cfg.subscribers = circle_subscribers(&cfg.subscribers[0], n, half, 1.0..8.0, 5);
     let cfg = Arc::new(cfg);
     let tz = chrono_tz::Australia::Sydney;
     let at = chrono::NaiveTime::from_hms_opt(6, 30, 0).expect("valid time");

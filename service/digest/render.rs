@@ -8,7 +8,7 @@
 
 use super::{chart, Digest, FailedDelivery, NoticeLine};
 use crate::notify::render::{
-    header_safe, html_escape, local_time, safe_url, CAUTION, CAUTION_TITLE,
+    header_safe, html_escape, html_footer, local_time, safe_url, text_footer,
 };
 use chrono_tz::Tz;
 
@@ -276,17 +276,8 @@ pub fn render_digest(d: &Digest, ctx: &DigestContext<'_>) -> RenderedDigest {
     if !d.nights.is_empty() {
         text.push_str(&format!("\n{}.\n", s.chart_alt));
     }
-    text.push_str(&format!("\n{CAUTION_TITLE}\n"));
-    for c in CAUTION {
-        text.push_str(&format!("- {c}\n"));
-    }
     text.push('\n');
-    if let Some(u) = status {
-        text.push_str(&format!("Status page: {u}\n"));
-    }
-    if let Some(u) = unsubscribe {
-        text.push_str(&format!("Stop these messages: {u}\n"));
-    }
+    text_footer(&mut text, status, unsubscribe, "Stop these messages");
 
     let small = "font-size:15px;";
     let mut html = String::new();
@@ -329,28 +320,8 @@ pub fn render_digest(d: &Digest, ctx: &DigestContext<'_>) -> RenderedDigest {
             "<p style=\"{small}\">Bars: visits per night (red above the usual range). Pale band: the usual range. Grey line: the usual level.</p>\n"
         ));
     }
-    html.push_str(&format!(
-        "<hr>\n<p style=\"{small}\"><strong>{CAUTION_TITLE}.</strong>"
-    ));
-    for c in CAUTION {
-        html.push(' ');
-        html.push_str(&html_escape(c));
-    }
-    html.push_str("</p>\n");
-    let mut links = vec![];
-    if let Some(u) = status {
-        links.push(format!("<a href=\"{}\">Status page</a>", html_escape(u)));
-    }
-    if let Some(u) = unsubscribe {
-        links.push(format!(
-            "<a href=\"{}\">Stop these messages</a>",
-            html_escape(u)
-        ));
-    }
-    if !links.is_empty() {
-        html.push_str(&format!("<p style=\"{small}\">{}</p>\n", links.join(" | ")));
-    }
-    html.push_str("</body>\n</html>\n");
+    html.push_str("<hr>\n");
+    html_footer(&mut html, status, unsubscribe, "Stop these messages");
     RenderedDigest {
         subject: s.subject,
         text,
@@ -406,7 +377,7 @@ mod tests {
         assert_eq!(lines.len(), 1);
         assert!(!r.text.contains("Watched species in the last"));
         assert!(r.chart_png.is_none());
-        assert!(r.text.contains(CAUTION[0]));
+        assert!(r.text.contains(crate::notify::render::CAUTION[0]));
     }
 
     #[test]

@@ -168,20 +168,7 @@ pub fn render_email(notice: &Notice, ctx: &EmailContext<'_>) -> RenderedEmail {
     text.push('\n');
     text.push_str(&watch_line);
     text.push_str("\n\n");
-    text.push_str(CAUTION_TITLE);
-    text.push('\n');
-    for c in CAUTION {
-        text.push_str("- ");
-        text.push_str(c);
-        text.push('\n');
-    }
-    text.push('\n');
-    if let Some(u) = status {
-        text.push_str(&format!("Status page: {u}\n"));
-    }
-    if let Some(u) = unsubscribe {
-        text.push_str(&format!("Stop these notices: {u}\n"));
-    }
+    text_footer(&mut text, status, unsubscribe, "Stop these notices");
 
     // HTML: the same sentences, escaped; no colours, large type.
     let small = "font-size:15px;";
@@ -212,28 +199,7 @@ pub fn render_email(notice: &Notice, ctx: &EmailContext<'_>) -> RenderedEmail {
         "<p style=\"{small}\">{}</p>\n<hr>\n",
         html_escape(&watch_line)
     ));
-    html.push_str(&format!(
-        "<p style=\"{small}\"><strong>{CAUTION_TITLE}.</strong>"
-    ));
-    for c in CAUTION {
-        html.push(' ');
-        html.push_str(&html_escape(c));
-    }
-    html.push_str("</p>\n");
-    let mut links = vec![];
-    if let Some(u) = status {
-        links.push(format!("<a href=\"{}\">Status page</a>", html_escape(u)));
-    }
-    if let Some(u) = unsubscribe {
-        links.push(format!(
-            "<a href=\"{}\">Stop these notices</a>",
-            html_escape(u)
-        ));
-    }
-    if !links.is_empty() {
-        html.push_str(&format!("<p style=\"{small}\">{}</p>\n", links.join(" | ")));
-    }
-    html.push_str("</body>\n</html>\n");
+    html_footer(&mut html, status, unsubscribe, "Stop these notices");
 
     RenderedEmail {
         subject: header_safe(&m.subject),
@@ -267,6 +233,50 @@ pub fn notice_words(notice: &Notice, time_zone: Tz, chance_in_words: Option<&str
         headline: m.headline,
         facts: m.facts,
     }
+}
+
+/// The end of every plain-text message: the caution, then the status and
+/// stop links (already checked with [`safe_url`]).
+pub fn text_footer(text: &mut String, status: Option<&str>, stop: Option<&str>, stop_label: &str) {
+    text.push_str(CAUTION_TITLE);
+    text.push('\n');
+    for c in CAUTION {
+        text.push_str("- ");
+        text.push_str(c);
+        text.push('\n');
+    }
+    text.push('\n');
+    if let Some(u) = status {
+        text.push_str(&format!("Status page: {u}\n"));
+    }
+    if let Some(u) = stop {
+        text.push_str(&format!("{stop_label}: {u}\n"));
+    }
+}
+
+/// The end of every HTML message: the caution in small type, the status
+/// and stop links, and the closing tags.
+pub fn html_footer(html: &mut String, status: Option<&str>, stop: Option<&str>, stop_label: &str) {
+    let small = "font-size:15px;";
+    html.push_str(&format!(
+        "<p style=\"{small}\"><strong>{CAUTION_TITLE}.</strong>"
+    ));
+    for c in CAUTION {
+        html.push(' ');
+        html.push_str(&html_escape(c));
+    }
+    html.push_str("</p>\n");
+    let mut links = vec![];
+    if let Some(u) = status {
+        links.push(format!("<a href=\"{}\">Status page</a>", html_escape(u)));
+    }
+    if let Some(u) = stop {
+        links.push(format!("<a href=\"{}\">{stop_label}</a>", html_escape(u)));
+    }
+    if !links.is_empty() {
+        html.push_str(&format!("<p style=\"{small}\">{}</p>\n", links.join(" | ")));
+    }
+    html.push_str("</body>\n</html>\n");
 }
 
 /// The sentences of one notice, already cleaned, not yet escaped.
