@@ -388,7 +388,7 @@ fn kill_9_twenty_times_under_load_loses_nothing_and_repeats_nothing() {
     let mut rng = Lcg(seed);
     let n_obs = knob("OUTRIDER_FAULT_OBSERVATIONS", 10_000) as usize;
     let kills = knob("OUTRIDER_FAULT_KILLS", 20);
-    let rate = knob("OUTRIDER_FAULT_RATE", 200) as f64;
+    let rate = knob("OUTRIDER_FAULT_RATE", 160) as f64;
     let msgs = load(n_obs, &mut rng, SystemClock.now());
 
     // The same messages without faults: the decisions to expect.
@@ -424,9 +424,16 @@ fn kill_9_twenty_times_under_load_loses_nothing_and_repeats_nothing() {
     let publisher =
         std::thread::spawn(move || publish_corpus_at(port, &corpus, 0, "killpublisher", rate));
     let started = Instant::now();
+    // The load lasts n / rate seconds; the kills are spread over it at
+    // random, each after 30 % to 100 % of the time left per kill to come,
+    // so they all fall during the load even when restarts are slow.
+    let load_ends = started + StdDuration::from_secs_f64(n_obs as f64 / rate);
     let mut at_kill = Vec::new();
-    for _ in 0..kills {
-        std::thread::sleep(StdDuration::from_millis(700 + rng.below(1500)));
+    for k in 0..kills {
+        let left = load_ends.saturating_duration_since(Instant::now());
+        let share = left / (kills - k + 1) as u32;
+        let pause = share.mul_f64(0.3 + rng.below(700) as f64 / 1000.0);
+        std::thread::sleep(pause.max(StdDuration::from_millis(100)));
         at_kill.push(n(
             &status_of(&run.cfg.with_file_name("state")),
             "observations_stored",

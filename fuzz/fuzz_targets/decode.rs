@@ -1,0 +1,5 @@
+//! cargo-fuzz (libFuzzer) entry for [`outrider_fuzz::decode`].
+#![no_main]
+libfuzzer_sys::fuzz_target!(|data: &[u8]| {
+    let _ = outrider_fuzz::decode(data);
+});
