@@ -66,8 +66,10 @@ pub fn summary(cfg: &Config) -> String {
         } else {
             let list: Vec<String> = cov
                 .iter()
-                .map(|(i, d)| {
-                    let id = &cfg.sites.sites[*i].deployment_id;
+                .map(|&i| {
+                    let i = i as usize;
+                    let id = &cfg.sites.sites[i].deployment_id;
+                    let d = rules.distance_km(&s.area, i);
                     if matches!(
                         s.area_spec,
                         AreaSpec::Circle { .. } | AreaSpec::GeoJson { .. }

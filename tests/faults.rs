@@ -369,6 +369,38 @@ fn setup() -> Setup {
     }
 }
 
+impl Drop for Setup {
+    /// With `OUTRIDER_FAULT_KEEP_LOG=1`, keeps the daemon's and the broker's
+    /// logs (every `*.log` under the run's directory) as
+    /// `/tmp/outrider-fault-<pid>-<path>.log`, for a failure or a figure
+    /// that needs explaining after the temporary directory is gone.
+    fn drop(&mut self) {
+        if std::env::var_os("OUTRIDER_FAULT_KEEP_LOG").is_none() {
+            return;
+        }
+        let mut todo = vec![self.dir.path().to_path_buf()];
+        while let Some(d) = todo.pop() {
+            let Ok(entries) = std::fs::read_dir(&d) else {
+                continue;
+            };
+            for e in entries.flatten() {
+                let p = e.path();
+                if p.is_dir() {
+                    todo.push(p);
+                } else if p.extension().is_some_and(|x| x == "log") {
+                    let rel = p.strip_prefix(self.dir.path()).unwrap_or(&p);
+                    let name = rel.to_string_lossy().replace('/', "-");
+                    let to = format!("/tmp/outrider-fault-{}-{name}", std::process::id());
+                    match std::fs::copy(&p, &to) {
+                        Ok(_) => eprintln!("kept {}", to),
+                        Err(e) => eprintln!("could not keep {}: {e}", p.display()),
+                    }
+                }
+            }
+        }
+    }
+}
+
 fn start(s: &Setup) -> Daemon {
     Daemon::start_with_env(&s.cfg, &[("OUTRIDER_TEST_HOOK_SECRET", HOOK_SECRET)])
 }

@@ -302,7 +302,7 @@ pub struct EventLedger {
     index: BTreeMap<String, BTreeMap<String, usize>>,
     groups: Vec<Group>,
     /// observation id -> location, for duplicates, retractions and relabels.
-    seen: HashMap<String, Seen>,
+    seen: HashMap<String, Seen, foldhash::fast::RandomState>,
 }
 
 impl EventLedger {
@@ -313,7 +313,7 @@ impl EventLedger {
             horizon: None,
             index: BTreeMap::new(),
             groups: Vec::new(),
-            seen: HashMap::new(),
+            seen: HashMap::default(),
         }
     }
 
@@ -330,6 +330,16 @@ impl EventLedger {
     /// Number of triggers held.
     pub fn trigger_count(&self) -> usize {
         self.seen.len()
+    }
+
+    /// A small stable handle of the (deployment, species) series: series
+    /// are never removed (pruning empties them), so the handle and an event
+    /// start name an event more cheaply than an [`EventId`].
+    pub fn series_of(&self, deployment_id: &str, scientific_name: &str) -> Option<u32> {
+        self.index
+            .get(deployment_id)
+            .and_then(|m| m.get(scientific_name))
+            .map(|&i| i as u32)
     }
 
     fn group_index(&mut self, deployment_id: &str, scientific_name: &str) -> usize {

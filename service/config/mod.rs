@@ -502,12 +502,12 @@ pub fn parse(
 
     let service = read_service(&mut w, &mut top, &base);
     let mqtt = read_mqtt(&mut w, &mut top, &base, files);
-    let broker = read_broker(&mut w, &mut top, files);
+    let broker = read_broker(&mut w, &mut top, files, &base);
     let sites_cfg = read_sites(&mut w, &mut top, &base);
     let detection = read_detection(&mut w, &mut top);
     let baseline = read_baseline(&mut w, &mut top);
     let species = read_species(&mut w, &mut top);
-    let smtp = read_smtp(&mut w, &mut top, files);
+    let smtp = read_smtp(&mut w, &mut top, files, &base);
     let email_folder = w.table(&mut top, "email_folder").and_then(|mut t| {
         let dir = w.req_str(
             &mut t,
@@ -518,7 +518,7 @@ pub fn parse(
         dir.map(|d| base.join(d.value))
     });
     let delivery = read_delivery(&mut w, &mut top);
-    let web = read_web(&mut w, &mut top, files);
+    let web = read_web(&mut w, &mut top, files, &base);
     let defaults = SubscriberDefaults {
         timezone: service.as_ref().map(|s| s.timezone).unwrap_or(Tz::UTC),
         min_probability: detection.min_probability,
@@ -695,6 +695,7 @@ fn read_secret(
     t: &mut Table<'_, '_>,
     name: &str,
     files: &Files<'_>,
+    base: &Path,
 ) -> Option<Secret> {
     if let Some(node) = t.get(name) {
         w.error(&node.span(), &t.key_path(name), "secrets are not written in the configuration file", Some(format!("put it in an environment variable and write {name}_env = \"VAR\", or in a file and write {name}_file = \"path\"")));
@@ -725,10 +726,11 @@ fn read_secret(
                 None
             }
         },
-        (None, Some(f)) => match (files.read)(Path::new(&f.value)) {
+        // Relative to the file that names it, like every other path.
+        (None, Some(f)) => match (files.read)(&base.join(&f.value)) {
             Ok(v) => {
                 w.secret_files
-                    .push((t.key_path(&file_key), PathBuf::from(&f.value)));
+                    .push((t.key_path(&file_key), base.join(&f.value)));
                 Some(Secret(v.trim_end_matches(['\r', '\n']).to_string()))
             }
             Err(err) => {
@@ -892,7 +894,7 @@ fn read_mqtt(
         }
     }
     out.username = w.str(&mut t, "username").map(|u| u.value);
-    out.password = read_secret(w, &mut t, "password", files);
+    out.password = read_secret(w, &mut t, "password", files, base);
     out.ca_file = w.str(&mut t, "ca_file").map(|f| base.join(f.value));
     if let Some(k) = w.int(&mut t, "keep_alive_seconds", 5, 3600) {
         out.keep_alive_seconds = k.value as u64;
@@ -926,6 +928,7 @@ fn read_broker(
     w: &mut Walker<'_, '_>,
     top: &mut Table<'_, '_>,
     files: &Files<'_>,
+    base: &Path,
 ) -> Option<Option<EmbeddedBroker>> {
     let Some(mut t) = w.table(top, "broker") else {
         return Some(None);
@@ -948,7 +951,7 @@ fn read_broker(
         }
     }
     let username = w.str(&mut t, "username").map(|u| u.value);
-    let password = read_secret(w, &mut t, "password", files);
+    let password = read_secret(w, &mut t, "password", files, base);
     if embedded && ok && !listen.ip().is_loopback() && (username.is_none() || password.is_none()) {
         w.error(
             &t.span,
@@ -1190,7 +1193,12 @@ fn read_species(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>) -> Species {
     out
 }
 
-fn read_smtp(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) -> Option<Smtp> {
+fn read_smtp(
+    w: &mut Walker<'_, '_>,
+    top: &mut Table<'_, '_>,
+    files: &Files<'_>,
+    base: &Path,
+) -> Option<Smtp> {
     let mut t = w.table(top, "smtp")?;
     let host = w.req_str(
         &mut t,
@@ -1228,7 +1236,7 @@ fn read_smtp(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>)
         "the sender, e.g. from = \"outrider <notices@example.org>\"",
     );
     let username = w.str(&mut t, "username").map(|u| u.value);
-    let password = read_secret(w, &mut t, "password", files);
+    let password = read_secret(w, &mut t, "password", files, base);
     let unsubscribe_mailto = w.str(&mut t, "unsubscribe_mailto").map(|m| m.value);
     if let (Some(h), Some(SmtpSecurity::None)) = (&host, security) {
         let loopback = h.value == "localhost"
@@ -1278,7 +1286,12 @@ fn read_smtp(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>)
     })
 }
 
-fn read_web(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) -> Option<Web> {
+fn read_web(
+    w: &mut Walker<'_, '_>,
+    top: &mut Table<'_, '_>,
+    files: &Files<'_>,
+    base: &Path,
+) -> Option<Web> {
     let mut out = Web {
         listen: None,
         admin_token: None,
@@ -1301,7 +1314,7 @@ fn read_web(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, files: &Files<'_>) 
             }
         }
     }
-    out.admin_token = read_secret(w, &mut t, "admin_token", files);
+    out.admin_token = read_secret(w, &mut t, "admin_token", files, base);
     if let Some(token) = &out.admin_token {
         // A bearer token is compared as sent: one that could be guessed in
         // a few tries protects nothing, and it must fit in a header.
@@ -1686,7 +1699,7 @@ fn read_subscriber(
     let mut webhook_format = NoticeFormat::Json;
     let webhook = w.table(t, "webhook").and_then(|mut h| {
         let url = w.req_str(&mut h, "url", "the address outrider POSTs each notice to");
-        let secret = read_secret(w, &mut h, "secret", files);
+        let secret = read_secret(w, &mut h, "secret", files, base);
         webhook_format = read_notice_format(w, &mut h);
         w.finish(h, &["url", "secret_env", "secret_file", "format"]);
         let url = url?;

@@ -214,6 +214,15 @@ fn secrets_come_only_from_the_environment_or_a_file() {
         cfg.mqtt.password.as_ref().map(Secret::expose),
         Some("s3cret")
     );
+    // A relative path is read beside the config file (DESIGN.md: relative
+    // paths are relative to the config file), not from the working directory.
+    assert_eq!(
+        cfg.secret_files,
+        vec![(
+            "mqtt.password_file".to_string(),
+            Path::new("/etc/outrider/secret.txt").to_path_buf()
+        )]
+    );
 }
 
 #[test]

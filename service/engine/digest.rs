@@ -104,7 +104,12 @@ impl Engine {
         let mut camera_nights = 0.0;
         let mut night_events = [0u64; CHART_NIGHTS];
         let mut night_expected = [0.0f64; CHART_NIGHTS];
-        let covered: Vec<usize> = self.rules.sites_of(sub).iter().map(|&(i, _)| i).collect();
+        let covered: Vec<usize> = self
+            .rules
+            .sites_of(sub)
+            .iter()
+            .map(|&i| i as usize)
+            .collect();
         for &site in &covered {
             if let std::collections::hash_map::Entry::Vacant(e) = cache.sites.entry(site) {
                 e.insert(self.site_facts(site, due, now));

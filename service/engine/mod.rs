@@ -39,8 +39,8 @@ use crate::config::{Config, TriggerKind};
 use crate::model::{Message, Observation, ObservationType};
 use crate::notify::{Candidate, Decision, Disposition, Evidence, FoldKey, Notice, Policy};
 use chrono::{DateTime, Duration, NaiveDate, Utc};
-use rules::RuleBook;
-use std::collections::{HashMap, HashSet};
+use rules::{RuleBook, TwilightCache};
+use std::collections::{BTreeSet, HashMap};
 use std::sync::Arc;
 
 /// What the engine asks the shell to store.
@@ -53,13 +53,23 @@ pub enum Output {
     /// A notice decision (sent, folded or deferred) with its reason and the
     /// channels a sent notice goes out on.
     Notice {
-        notice: Box<Notice>,
+        /// Shared with the engine's record of sent notices (retraction
+        /// follow-ups), so a decision is not copied to be remembered.
+        notice: Arc<Notice>,
         reason: String,
         channels: Vec<crate::config::Channel>,
     },
     /// A daily digest is due: queue it (once per subscriber and due instant).
     Digest(Box<crate::digest::Digest>),
 }
+
+/// An event by its series in the ledger
+/// ([`EventLedger::series_of`]) and its start: what the engine's own maps
+/// are keyed by (an [`EventId`] holds two `String`s to hash and clone).
+type EventKey = (u32, DateTime<Utc>);
+
+/// The engine's hot maps: small keys, a fast seeded hash.
+type FastMap<K, V> = HashMap<K, V, foldhash::fast::RandomState>;
 
 /// What the engine remembers of an event besides the ledger's numbers.
 #[derive(Debug, Clone, Default)]
@@ -77,11 +87,18 @@ pub struct Engine {
     ledger: EventLedger,
     uptime: Vec<Uptime>,
     last_sign: Vec<DateTime<Utc>>,
-    meta: HashMap<EventId, EventMeta>,
-    /// (subscriber, watch, event) already decided, so an event is notified once.
-    decided: HashSet<(usize, usize, EventId)>,
+    meta: FastMap<EventKey, EventMeta>,
+    /// (event start in ms, series, subscriber, watch) already decided, so
+    /// an event is notified once. Ordered by start, so pruning is a split,
+    /// not a walk over every entry.
+    decided: BTreeSet<(i64, u32, u32, u32)>,
     /// Sent notices per event, for retraction follow-ups.
-    sent_for: HashMap<EventId, Vec<Notice>>,
+    sent_for: FastMap<EventKey, Vec<Arc<Notice>>>,
+    /// Civil twilight per site and date, for dusk-to-dawn watches.
+    twilight: TwilightCache,
+    /// (subscriber, site) -> the distance a notice shows, km, worked out
+    /// at the first notice (the rule book keeps membership only).
+    distances: FastMap<(u32, u32), f64>,
     /// Open silence episodes: (subscriber, watch, site) -> last sign of life.
     silent: HashMap<(usize, usize, usize), DateTime<Utc>>,
     policy: Policy,
@@ -92,7 +109,7 @@ pub struct Engine {
     quiet: bool,
     options: Options,
     /// Corrections whose observation has not arrived yet, with arrival time.
-    pending: HashMap<String, Vec<(DateTime<Utc>, crate::model::Correction)>>,
+    pending: FastMap<String, Vec<(DateTime<Utc>, crate::model::Correction)>>,
     /// Species of a notice that has no single event (build-up), for `decide`.
     species_override: Option<String>,
     /// CUSUM statistic per (subscriber, watch, site, species).
@@ -104,7 +121,7 @@ pub struct Engine {
     /// Per-site digest numbers for the digests being built now.
     digest_cache: Option<digest::DigestCache>,
     /// The latest common name the messages gave per scientific name.
-    vernacular: HashMap<String, String>,
+    vernacular: FastMap<String, String>,
 }
 
 /// Days of history the CUSUM runs over quietly at start, so a build-up
@@ -145,9 +162,11 @@ impl Engine {
             rules,
             uptime,
             last_sign,
-            meta: HashMap::new(),
-            decided: HashSet::new(),
-            sent_for: HashMap::new(),
+            meta: FastMap::default(),
+            decided: Default::default(),
+            sent_for: FastMap::default(),
+            twilight: TwilightCache::default(),
+            distances: FastMap::default(),
             silent: HashMap::new(),
             policy: Policy::new(),
             regional: HashMap::new(),
@@ -155,12 +174,12 @@ impl Engine {
             quiet: false,
             options,
             species_override: None,
-            pending: HashMap::new(),
+            pending: FastMap::default(),
             cusum: HashMap::new(),
             last_day: None,
             digests: None,
             digest_cache: None,
-            vernacular: HashMap::new(),
+            vernacular: FastMap::default(),
             cfg,
         }
     }
@@ -229,16 +248,25 @@ impl Engine {
             };
             match n.trigger {
                 T::Presence | T::FirstSeen | T::Spike => {
-                    if let Some(species) = &n.scientific_name {
-                        let id = EventId {
-                            deployment_id: n.deployment_id.clone(),
-                            scientific_name: species.clone(),
-                            start: n.event_time,
-                        };
+                    // No series: no event of that species at that camera in
+                    // the working set, so nothing to decide again.
+                    if let Some(series) = n
+                        .scientific_name
+                        .as_ref()
+                        .and_then(|sp| self.ledger.series_of(&n.deployment_id, sp))
+                    {
                         if n.disposition == Disposition::Sent {
-                            self.sent_for.entry(id.clone()).or_default().push(n.clone());
+                            self.sent_for
+                                .entry((series, n.event_time))
+                                .or_default()
+                                .push(Arc::new(n.clone()));
                         }
-                        self.decided.insert((sub, wi, id));
+                        self.decided.insert((
+                            n.event_time.timestamp_millis(),
+                            series,
+                            sub as u32,
+                            wi as u32,
+                        ));
                     }
                 }
                 // Open until a later sign of life (warm has seen them all).
@@ -285,7 +313,8 @@ impl Engine {
 
     /// Applies one message at `now`; returns what to store.
     pub fn apply(&mut self, message: &Message, now: DateTime<Utc>) -> Vec<Output> {
-        let mut out = Vec::new();
+        // An event upsert and a notice or two, mostly.
+        let mut out = Vec::with_capacity(4);
         match message {
             Message::Heartbeat(h) => {
                 self.sign_of_life(&h.deployment_id, h.timestamp, now, &mut out)
@@ -397,7 +426,13 @@ impl Engine {
             }
             return;
         }
-        let meta = self.meta.entry(id.clone()).or_default();
+        let Some(series) = self
+            .ledger
+            .series_of(&id.deployment_id, &id.scientific_name)
+        else {
+            return;
+        };
+        let meta = self.meta.entry((series, id.start)).or_default();
         let raised = probability(o) > meta.best_probability;
         meta.best_probability = meta.best_probability.max(probability(o));
         if meta.vernacular_name.is_none() {
@@ -423,15 +458,16 @@ impl Engine {
         };
         let best = self
             .meta
-            .get(&id)
+            .get(&(series, id.start))
             .map(|m| m.best_probability)
             .unwrap_or(0.0);
-        let mut spike_cache: HashMap<u32, Option<SpikeEvidence>> = HashMap::new();
-        let covering: Vec<(usize, f64)> = self.rules.covering(site).to_vec();
-        for (sub, distance_km) in covering {
-            let nwatches = self.cfg.subscribers[sub].watches.len();
-            for wi in 0..nwatches {
-                let w = &self.cfg.subscribers[sub].watches[wi];
+        // (window hours, evidence): watches of one event share the test.
+        let mut spike_cache: Vec<(u32, Option<SpikeEvidence>)> = Vec::new();
+        let cfg = Arc::clone(&self.cfg);
+        let ncovering = self.rules.covering(site).len();
+        for ci in 0..ncovering {
+            let sub = self.rules.covering(site)[ci] as usize;
+            for (wi, w) in cfg.subscribers[sub].watches.iter().enumerate() {
                 if !matches!(
                     w.trigger,
                     TriggerKind::Presence | TriggerKind::FirstSeen | TriggerKind::Spike
@@ -441,16 +477,26 @@ impl Engine {
                 if !w.species.contains(name) || best < w.min_probability {
                     continue;
                 }
-                if !self.rules.in_window(sub, wi, site, event.start) {
+                if !self
+                    .rules
+                    .in_window(sub, wi, site, event.start, &mut self.twilight)
+                {
                     continue;
                 }
-                if self.decided.contains(&(sub, wi, id.clone())) {
+                let decided_key = (
+                    event.start.timestamp_millis(),
+                    series,
+                    sub as u32,
+                    wi as u32,
+                );
+                if self.decided.contains(&decided_key) {
                     continue;
                 }
                 let distance_from = Some(match self.cfg.subscribers[sub].area {
                     crate::geo::Area::Circle(_) => crate::notify::notice::DistanceFrom::Centre,
                     _ => crate::notify::notice::DistanceFrom::Area,
                 });
+                let distance_km = self.distance_km(sub, site);
                 let mut ev = Evidence {
                     count: Some(event.count),
                     distance_km: Some(round2(distance_km)),
@@ -482,8 +528,8 @@ impl Engine {
                         if c < u64::from(min_count) {
                             continue;
                         }
-                        let s = match spike_cache.get(&hours) {
-                            Some(s) => s.clone(),
+                        let s = match spike_cache.iter().find(|(h, _)| *h == hours) {
+                            Some((_, s)) => s.clone(),
                             None => {
                                 let s = self.spike_evidence(
                                     site,
@@ -493,7 +539,7 @@ impl Engine {
                                     ratio,
                                     min_count,
                                 );
-                                spike_cache.insert(hours, s.clone());
+                                spike_cache.push((hours, s.clone()));
                                 s
                             }
                         };
@@ -518,7 +564,7 @@ impl Engine {
                         crate::notify::Trigger::Spike
                     }
                 };
-                self.decided.insert((sub, wi, id.clone()));
+                self.decided.insert(decided_key);
                 let event_id = event_key(&id);
                 self.decide(
                     sub,
@@ -536,6 +582,23 @@ impl Engine {
         }
     }
 
+    /// The distance a notice of `sub` at `site` shows, km (cached; a config
+    /// reload builds a new engine).
+    fn distance_km(&mut self, sub: usize, site: usize) -> f64 {
+        let key = (sub as u32, site as u32);
+        if let Some(d) = self.distances.get(&key) {
+            return *d;
+        }
+        let d = self
+            .rules
+            .distance_km(&self.cfg.subscribers[sub].area, site);
+        if self.distances.len() >= 1_000_000 {
+            self.distances.clear();
+        }
+        self.distances.insert(key, d);
+        d
+    }
+
     /// No event of `species` at any site the subscriber covers in the
     /// `quiet_days` before `start`, and those sites were deployed over that
     /// whole span (otherwise "not seen" only means "not watched").
@@ -544,11 +607,11 @@ impl Engine {
         let sites = self.rules.sites_of(sub);
         let watched = sites
             .iter()
-            .any(|&(s, _)| self.rules.site(s).deployment_start <= from);
+            .any(|&s| self.rules.site(s as usize).deployment_start <= from);
         watched
-            && sites.iter().all(|&(s, _)| {
+            && sites.iter().all(|&s| {
                 self.ledger.count_starting_in(
-                    &self.rules.site(s).deployment_id,
+                    &self.rules.site(s as usize).deployment_id,
                     species,
                     from,
                     start,
@@ -806,7 +869,7 @@ impl Engine {
         let species = event
             .map(|e| e.scientific_name.clone())
             .or_else(|| self.species_override.take());
-        evidence.rule = Some(format!("{}/{}", s.id, w.name));
+        evidence.rule = Some([s.id.as_str(), "/", w.name.as_str()].concat());
         evidence.clock_time = Some(now);
         let key = FoldKey {
             subscriber: s.id.clone(),
@@ -819,8 +882,8 @@ impl Engine {
             .as_ref()
             .is_some_and(|q| q.contains_time(now.with_timezone(&s.timezone).time()));
         let cand = Candidate {
-            key: key.clone(),
-            event_id: event_id.clone(),
+            key,
+            event_id,
             event_time,
             count: event.map(|e| e.count).unwrap_or(0),
             urgent: w.urgent,
@@ -830,11 +893,17 @@ impl Engine {
         };
         let decision = self.policy.on_candidate(&cand, now);
         let folded = if matches!(decision, Decision::SendNow { .. }) {
-            self.policy.take_folded(&key)
+            self.policy.take_folded(&cand.key)
         } else {
             Vec::new()
         };
-        let meta = event.and_then(|e| self.meta.get(&e.id()));
+        let Candidate { event_id, .. } = cand;
+        let event_key = event.and_then(|e| {
+            self.ledger
+                .series_of(&e.deployment_id, &e.scientific_name)
+                .map(|series| (series, e.start))
+        });
+        let meta = event_key.and_then(|k| self.meta.get(&k));
         let notice = Notice {
             subscriber_id: s.id.clone(),
             subscriber_name: s.name.clone(),
@@ -855,16 +924,17 @@ impl Engine {
             image_url: meta.and_then(|m| m.file_path.clone()),
             folded,
         };
+        let notice = Arc::new(notice);
         if notice.disposition == Disposition::Sent {
-            if let Some(e) = event {
+            if let Some(k) = event_key {
                 self.sent_for
-                    .entry(e.id())
+                    .entry(k)
                     .or_default()
-                    .push(notice.clone());
+                    .push(Arc::clone(&notice));
             }
         }
         out.push(Output::Notice {
-            notice: Box::new(notice),
+            notice,
             reason: decision.reason().to_string(),
             channels: w.channels.clone(),
         });
@@ -918,9 +988,19 @@ impl Engine {
         removed
     }
 
+    /// The engine's key of an event the ledger has a series for.
+    fn key_of(&self, id: &EventId) -> Option<EventKey> {
+        self.ledger
+            .series_of(&id.deployment_id, &id.scientific_name)
+            .map(|series| (series, id.start))
+    }
+
     fn move_meta(&mut self, old: &EventId, new: &EventId) {
-        if let Some(m) = self.meta.remove(old) {
-            let e = self.meta.entry(new.clone()).or_default();
+        let (Some(old), Some(new)) = (self.key_of(old), self.key_of(new)) else {
+            return;
+        };
+        if let Some(m) = self.meta.remove(&old) {
+            let e = self.meta.entry(new).or_default();
             e.best_probability = e.best_probability.max(m.best_probability);
             if e.vernacular_name.is_none() {
                 e.vernacular_name = m.vernacular_name;
@@ -929,8 +1009,8 @@ impl Engine {
                 e.file_path = m.file_path;
             }
         }
-        if let Some(n) = self.sent_for.remove(old) {
-            self.sent_for.entry(new.clone()).or_default().extend(n);
+        if let Some(n) = self.sent_for.remove(&old) {
+            self.sent_for.entry(new).or_default().extend(n);
         }
     }
 
@@ -943,10 +1023,11 @@ impl Engine {
         now: DateTime<Utc>,
         out: &mut Vec<Output>,
     ) {
-        let Some(sent) = self.sent_for.remove(id) else {
+        let Some(sent) = self.key_of(id).and_then(|k| self.sent_for.remove(&k)) else {
             return;
         };
-        for mut n in sent {
+        for n in sent {
+            let mut n = Arc::unwrap_or_clone(n);
             let channels = self
                 .cfg
                 .subscribers
@@ -962,7 +1043,7 @@ impl Engine {
             n.folded.clear();
             n.evidence.clock_time = Some(now);
             out.push(Output::Notice {
-                notice: Box::new(n),
+                notice: Arc::new(n),
                 reason: "the observation this notice was based on was corrected".into(),
                 channels,
             });
@@ -979,9 +1060,11 @@ impl Engine {
         self.last_prune = Some(now);
         let cutoff = now - self.horizon();
         self.ledger.prune_before(cutoff);
-        self.meta.retain(|id, _| id.start >= cutoff);
-        self.decided.retain(|(_, _, id)| id.start >= cutoff);
-        self.sent_for.retain(|id, _| id.start >= cutoff);
+        self.meta.retain(|(_, start), _| *start >= cutoff);
+        self.decided = self
+            .decided
+            .split_off(&(cutoff.timestamp_millis(), 0, 0, 0));
+        self.sent_for.retain(|(_, start), _| *start >= cutoff);
         self.pending
             .retain(|_, v| v.iter().any(|(at, _)| *at >= cutoff));
         self.policy.prune(now);
@@ -1065,16 +1148,54 @@ pub fn correct(ledger: &mut EventLedger, c: &crate::model::Correction) -> Change
 
 /// A stable text key of an event.
 pub fn event_key(id: &EventId) -> String {
-    format!(
-        "{}:{}:{}",
-        id.deployment_id,
-        id.scientific_name.replace(' ', "_"),
-        rfc(id.start)
-    )
+    let mut s = String::with_capacity(id.deployment_id.len() + id.scientific_name.len() + 22);
+    s.push_str(&id.deployment_id);
+    s.push(':');
+    s.extend(
+        id.scientific_name
+            .chars()
+            .map(|c| if c == ' ' { '_' } else { c }),
+    );
+    s.push(':');
+    push_rfc(&mut s, id.start);
+    s
 }
 
 fn rfc(t: DateTime<Utc>) -> String {
-    t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)
+    let mut s = String::with_capacity(20);
+    push_rfc(&mut s, t);
+    s
+}
+
+/// Appends `t` as RFC 3339 in UTC to whole seconds (`2026-07-14T02:00:00Z`),
+/// as `to_rfc3339_opts(SecondsFormat::Secs, true)` writes it, without the
+/// formatting machinery (event keys are built for every decision).
+fn push_rfc(s: &mut String, t: DateTime<Utc>) {
+    use chrono::{Datelike, Timelike};
+    let y = t.year();
+    if !(0..=9999).contains(&y) {
+        s.push_str(&t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true));
+        return;
+    }
+    let two = |s: &mut String, v: u32| {
+        s.push(char::from(b'0' + (v / 10) as u8));
+        s.push(char::from(b'0' + (v % 10) as u8));
+    };
+    let y = y as u32;
+    two(s, y / 100);
+    two(s, y % 100);
+    s.push('-');
+    two(s, t.month());
+    s.push('-');
+    two(s, t.day());
+    s.push('T');
+    two(s, t.hour());
+    s.push(':');
+    two(s, t.minute());
+    s.push(':');
+    // A leap second (nanosecond >= 1e9) is written as :60, as chrono does.
+    two(s, t.second() + u32::from(t.nanosecond() >= 1_000_000_000));
+    s.push('Z');
 }
 
 fn round2(v: f64) -> f64 {

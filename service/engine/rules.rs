@@ -11,11 +11,13 @@ use std::collections::HashMap;
 pub struct RuleBook {
     sites: Vec<Site>,
     points: Vec<LatLon>,
-    by_id: HashMap<String, usize>,
-    /// Per site: (subscriber index, distance km) for every subscriber covering it.
-    covering: Vec<Vec<(usize, f64)>>,
-    /// Per subscriber: (site index, distance km) for the sites it covers.
-    covered: Vec<Vec<(usize, f64)>>,
+    by_id: HashMap<String, usize, foldhash::fast::RandomState>,
+    /// Who covers what, both ways, as flat lists with offsets (4 bytes a
+    /// pair): a million subscribers over 10,000 sites make tens of millions
+    /// of pairs. Distances are worked out when a notice needs one
+    /// ([`RuleBook::distance_km`]).
+    covering: Csr,
+    covered: Csr,
     /// (subscriber, watch, site) for every silence watch and covered site.
     silence: Vec<(usize, usize, usize)>,
     /// (subscriber, watch, site) for every build-up watch and covered site.
@@ -23,6 +25,48 @@ pub struct RuleBook {
     /// `[subscriber][watch]`: time zone, hours and season (all `Copy`), so
     /// the window test needs no `Config`.
     windows: Vec<Vec<Window>>,
+}
+
+/// Lists of indices in one flat vector: list `i` is
+/// `items[offsets[i]..offsets[i + 1]]`.
+#[derive(Debug, Default)]
+struct Csr {
+    offsets: Vec<u32>,
+    items: Vec<u32>,
+}
+
+impl Csr {
+    fn get(&self, i: usize) -> &[u32] {
+        match (self.offsets.get(i), self.offsets.get(i + 1)) {
+            (Some(&a), Some(&b)) => &self.items[a as usize..b as usize],
+            _ => &[],
+        }
+    }
+
+    /// The same pairs turned around: for each of `n` targets, the lists
+    /// holding it, in list order.
+    fn transpose(&self, n: usize) -> Csr {
+        let mut counts = vec![0u32; n + 1];
+        for &t in &self.items {
+            counts[t as usize + 1] += 1;
+        }
+        for i in 0..n {
+            counts[i + 1] += counts[i];
+        }
+        let mut next = counts.clone();
+        let mut items = vec![0u32; self.items.len()];
+        for list in 0..self.offsets.len().saturating_sub(1) {
+            for &t in self.get(list) {
+                let slot = &mut next[t as usize];
+                items[*slot as usize] = list as u32;
+                *slot += 1;
+            }
+        }
+        Csr {
+            offsets: counts,
+            items,
+        }
+    }
 }
 
 type Window = (
@@ -49,8 +93,11 @@ impl RuleBook {
             .enumerate()
             .map(|(i, s)| (s.deployment_id.clone(), i))
             .collect();
-        let mut covering = vec![Vec::new(); sites.len()];
-        let mut covered = Vec::with_capacity(cfg.subscribers.len());
+        let mut covered = Csr {
+            offsets: Vec::with_capacity(cfg.subscribers.len() + 1),
+            items: Vec::new(),
+        };
+        covered.offsets.push(0);
         let mut silence = Vec::new();
         let mut buildup = Vec::new();
         let mut windows = Vec::with_capacity(cfg.subscribers.len());
@@ -61,20 +108,20 @@ impl RuleBook {
                     .map(|w| (sub.timezone, w.hours, w.season))
                     .collect(),
             );
-            let cov = index.coverage_of(&sub.area);
-            for (site, d) in &cov {
-                covering[*site].push((si, *d));
-            }
+            let cov = index.covered_by(&sub.area);
             for (wi, w) in sub.watches.iter().enumerate() {
                 if w.trigger == TriggerKind::Silence {
-                    silence.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
+                    silence.extend(cov.iter().map(|&site| (si, wi, site as usize)));
                 }
                 if w.trigger == TriggerKind::BuildUp {
-                    buildup.extend(cov.iter().map(|(site, _)| (si, wi, *site)));
+                    buildup.extend(cov.iter().map(|&site| (si, wi, site as usize)));
                 }
             }
-            covered.push(cov);
+            covered.items.extend_from_slice(&cov);
+            covered.offsets.push(covered.items.len() as u32);
         }
+        covered.items.shrink_to_fit();
+        let covering = covered.transpose(sites.len());
         RuleBook {
             sites,
             points,
@@ -99,15 +146,23 @@ impl RuleBook {
         &self.sites
     }
 
-    /// Subscribers covering site `i`, with the distance a notice shows.
-    pub fn covering(&self, i: usize) -> &[(usize, f64)] {
-        &self.covering[i]
+    /// Subscribers covering site `i` (in config order).
+    pub fn covering(&self, i: usize) -> &[u32] {
+        self.covering.get(i)
     }
 
-    /// Sites subscriber `s` covers (in sites-file order), with the distance
-    /// a notice shows.
-    pub fn sites_of(&self, s: usize) -> &[(usize, f64)] {
-        &self.covered[s]
+    /// Sites subscriber `s` covers (in sites-file order).
+    pub fn sites_of(&self, s: usize) -> &[u32] {
+        self.covered.get(s)
+    }
+
+    /// The distance a notice shows from `area` (the subscriber's) to a
+    /// site it covers, km: geodesic from a circle's centre, 0 inside a
+    /// polygon or else to its boundary, 0 for listed sites and `all`.
+    pub fn distance_km(&self, area: &crate::geo::Area, site: usize) -> f64 {
+        let s = &self.sites[site];
+        area.covers(self.points[site], &s.deployment_id)
+            .unwrap_or(0.0)
     }
 
     pub fn silence_watches(&self) -> &[(usize, usize, usize)] {
@@ -120,12 +175,60 @@ impl RuleBook {
 
     /// The watch's hours and season hold at `at` (the subscriber's time
     /// zone; dusk and dawn at the site).
-    pub fn in_window(&self, sub: usize, watch: usize, site: usize, at: DateTime<Utc>) -> bool {
+    /// `twilight` keeps the civil twilight of each (site, local date, zone)
+    /// worked out so far: the solar equations cost more than the rest of an
+    /// event's matching, and a site's night is the same for every watch.
+    pub fn in_window(
+        &self,
+        sub: usize,
+        watch: usize,
+        site: usize,
+        at: DateTime<Utc>,
+        twilight: &mut TwilightCache,
+    ) -> bool {
         let Some((tz, hours, season)) = self.windows.get(sub).and_then(|w| w.get(watch)) else {
             return false;
         };
-        hours.contains(at, *tz, self.points[site])
-            && season.as_ref().is_none_or(|s| s.contains(at, *tz))
+        let in_hours = match hours {
+            crate::calendar::Hours::DuskToDawn => {
+                twilight.get(site, self.points[site], at, *tz).is_night(at)
+            }
+            other => other.contains(at, *tz, self.points[site]),
+        };
+        in_hours && season.as_ref().is_none_or(|s| s.contains(at, *tz))
+    }
+}
+
+/// Civil twilight per (site, local date, zone), as
+/// [`crate::geo::solar::civil_twilight`] gives it. Bounded: emptied when it
+/// holds more than [`TwilightCache::LIMIT`] entries (a year of 10,000 sites
+/// is 3.65 million; recent dates are what events ask for).
+#[derive(Debug, Default)]
+pub struct TwilightCache {
+    map: HashMap<(usize, chrono::NaiveDate, chrono_tz::Tz), crate::geo::solar::CivilTwilight>,
+}
+
+impl TwilightCache {
+    pub const LIMIT: usize = 200_000;
+
+    /// The twilight of the local date (in `tz`) of `at` at `site`.
+    pub fn get(
+        &mut self,
+        site: usize,
+        point: LatLon,
+        at: DateTime<Utc>,
+        tz: chrono_tz::Tz,
+    ) -> crate::geo::solar::CivilTwilight {
+        let date = at.with_timezone(&tz).date_naive();
+        if let Some(t) = self.map.get(&(site, date, tz)) {
+            return *t;
+        }
+        if self.map.len() >= Self::LIMIT {
+            self.map.clear();
+        }
+        let t = crate::geo::solar::civil_twilight(date, point, tz);
+        self.map.insert((site, date, tz), t);
+        t
     }
 }
 

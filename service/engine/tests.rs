@@ -502,3 +502,27 @@ fn a_restart_anywhere_decides_as_the_engine_that_kept_running() {
         "the check can tell a forgetful restart"
     );
 }
+
+proptest::proptest! {
+    /// The hand-written RFC 3339 writer of event keys agrees with chrono's
+    /// `to_rfc3339_opts(Secs, true)` (the reference) over years 1-9999,
+    /// sub-second parts included (they are dropped, not rounded).
+    #[test]
+    fn event_key_time_matches_chrono(secs in -62_000_000_000i64..253_000_000_000i64, nanos in 0u32..1_000_000_000) {
+        let t = DateTime::from_timestamp(secs, nanos).unwrap();
+        proptest::prop_assert_eq!(rfc(t), t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true));
+    }
+}
+
+#[test]
+fn event_key_replaces_spaces_in_the_name() {
+    let id = EventId {
+        deployment_id: "KB-01".into(),
+        scientific_name: "Canis familiaris".into(),
+        start: t("2026-07-14T02:00:00+10:00"),
+    };
+    assert_eq!(
+        event_key(&id),
+        "KB-01:Canis_familiaris:2026-07-13T16:00:00Z"
+    );
+}

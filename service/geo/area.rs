@@ -87,6 +87,22 @@ impl Circle {
         let d = distance_m(self.center, site);
         (d <= r_m).then_some(d / 1000.0)
     }
+
+    /// Whether the circle covers the site: the same answer as
+    /// [`Circle::covers`], with the exact geodesic only where the sphere
+    /// cannot decide (within the slack of the edge). For building the rule
+    /// book, where the distance is not needed yet.
+    pub fn contains(&self, site: LatLon) -> bool {
+        let r_m = self.radius_km * 1000.0;
+        let h = haversine_m(self.center, site);
+        if h > r_m * (1.0 + SLACK) + 1.0 {
+            return false;
+        }
+        if h < r_m * (1.0 - SLACK) - 1.0 {
+            return true;
+        }
+        distance_m(self.center, site) <= r_m
+    }
 }
 
 /// Polygons (straight lon/lat edges, holes, closed) plus a geodesic buffer.
@@ -232,6 +248,15 @@ impl Area {
             Area::Polygon(p) => p.covers(site),
             Area::Sites(ids) => ids.iter().any(|i| i == site_id).then_some(0.0),
             Area::All => Some(0.0),
+        }
+    }
+
+    /// Whether the area covers the site: `covers(..).is_some()`, cheaper for
+    /// circles (no exact distance for a site clearly inside).
+    pub fn contains(&self, site: LatLon, site_id: &str) -> bool {
+        match self {
+            Area::Circle(c) => c.contains(site),
+            other => other.covers(site, site_id).is_some(),
         }
     }
 
@@ -433,8 +458,10 @@ mod tests {
         let d_km = distance_m(centre, site) / 1000.0;
         let c = Circle::new(centre, d_km).unwrap();
         assert_eq!(c.covers(site), Some(d_km));
+        assert!(c.contains(site));
         let c = Circle::new(centre, d_km * (1.0 - 1e-9)).unwrap();
         assert_eq!(c.covers(site), None);
+        assert!(!c.contains(site));
         // Haversine would be off by about 0.3 % here: a site 20 m inside a
         // 6 km circle on the ellipsoid must still be in.
         let r_km = 6.0;
@@ -450,6 +477,30 @@ mod tests {
         }
         let c = Circle::new(centre, r_km).unwrap();
         assert!(c.covers(ll(-31.6 - lo, 148.1)).is_some());
+        assert!(c.contains(ll(-31.6 - lo, 148.1)));
+    }
+
+    proptest::proptest! {
+        #![proptest_config(proptest::prelude::ProptestConfig::with_cases(512))]
+        /// The rule book's membership test agrees with `covers` everywhere,
+        /// including within a metre of the edge (the radius is set to the
+        /// exact distance times 1 +- a few parts per million).
+        #[test]
+        fn circle_contains_agrees_with_covers(
+            lat in -40.0f64..-10.0, lon in 140.0f64..155.0,
+            dlat in -0.3f64..0.3, dlon in -0.3f64..0.3,
+            r_km in 0.5f64..60.0, near_edge: bool, rel in -5e-6f64..5e-6,
+        ) {
+            let centre = ll(lat, lon);
+            let site = ll(lat + dlat, lon + dlon);
+            let r = if near_edge {
+                (distance_m(centre, site) / 1000.0 * (1.0 + rel)).max(0.001)
+            } else {
+                r_km
+            };
+            let c = Circle::new(centre, r).unwrap();
+            proptest::prop_assert_eq!(c.contains(site), c.covers(site).is_some());
+        }
     }
 
     proptest::proptest! {

@@ -91,6 +91,38 @@ impl SiteIndex {
     }
 }
 
+impl SiteIndex {
+    /// The sites the area covers, by index (sorted, once each): the
+    /// membership of [`SiteIndex::coverage_of`] without the distances.
+    pub fn covered_by(&self, area: &Area) -> Vec<u32> {
+        let mut out: Vec<u32> = match area {
+            Area::All => (0..self.sites.len() as u32).collect(),
+            Area::Sites(ids) => ids
+                .iter()
+                .filter_map(|id| self.by_id.get(id))
+                .flatten()
+                .map(|&i| i as u32)
+                .collect(),
+            Area::Circle(_) | Area::Polygon(_) => {
+                let mut found = Vec::new();
+                for b in area.search_boxes().unwrap_or_default() {
+                    let env = AABB::from_corners([b[0], b[1]], [b[2], b[3]]);
+                    for e in self.tree.locate_in_envelope(&env) {
+                        let (id, p) = &self.sites[e.data];
+                        if area.contains(*p, id) {
+                            found.push(e.data as u32);
+                        }
+                    }
+                }
+                found
+            }
+        };
+        out.sort_unstable();
+        out.dedup();
+        out
+    }
+}
+
 /// For each area (same order), the covered `(site index, distance km)`,
 /// sorted by site index.
 pub fn coverage<S: AsRef<str>>(sites: &[(S, LatLon)], areas: &[Area]) -> Vec<Vec<(usize, f64)>> {
@@ -151,8 +183,12 @@ mod tests {
         #[test]
         fn index_equals_brute_force(sites in site_strategy(), areas in prop::collection::vec(area_strategy(), 1..6)) {
             let got = coverage(&sites, &areas);
+            let index = SiteIndex::new(&sites);
             for (a, g) in areas.iter().zip(&got) {
                 prop_assert_eq!(g, &brute(&sites, a));
+                // Membership alone (the rule book's fast path) is the same set.
+                let ids: Vec<u32> = g.iter().map(|&(i, _)| i as u32).collect();
+                prop_assert_eq!(index.covered_by(a), ids);
             }
         }
     }

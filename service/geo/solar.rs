@@ -160,10 +160,20 @@ pub fn civil_twilight(date: NaiveDate, at: LatLon, tz: Tz) -> CivilTwilight {
 /// whole date is night when the sun stays below -6 degrees.
 pub fn is_night(instant: DateTime<Utc>, at: LatLon, tz: Tz) -> bool {
     let date = instant.with_timezone(&tz).date_naive();
-    let tw = civil_twilight(date, at, tz);
-    match (tw.dawn, tw.dusk) {
-        (None, None) => tw.polar == Some(Polar::AlwaysDark),
-        (dawn, dusk) => dawn.is_some_and(|d| instant < d) || dusk.is_some_and(|d| instant >= d),
+    civil_twilight(date, at, tz).is_night(instant)
+}
+
+impl CivilTwilight {
+    /// Whether `instant`, on this twilight's local date, is before civil
+    /// dawn or from civil dusk on (the night either side of the day), or
+    /// the date has no civil day at all. [`is_night`] without the solar
+    /// computation, for a caller that keeps the twilight of a date.
+    pub fn is_night(&self, instant: DateTime<Utc>) -> bool {
+        let tw = self;
+        match (tw.dawn, tw.dusk) {
+            (None, None) => tw.polar == Some(Polar::AlwaysDark),
+            (dawn, dusk) => dawn.is_some_and(|d| instant < d) || dusk.is_some_and(|d| instant >= d),
+        }
     }
 }
 

@@ -27,7 +27,7 @@
 
 use chrono::{DateTime, Duration, Utc};
 use serde::{Deserialize, Serialize};
-use std::collections::{BTreeMap, VecDeque};
+use std::collections::{BTreeMap, HashMap, VecDeque};
 
 use crate::notify::notice::{Disposition, FoldedEvent};
 
@@ -119,7 +119,9 @@ struct KeyState {
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 #[serde(from = "Snapshot", into = "Snapshot")]
 pub struct Policy {
-    keys: BTreeMap<FoldKey, KeyState>,
+    /// Hashed, not ordered: a lookup per candidate is the hot path;
+    /// the few places that need an order sort.
+    keys: HashMap<FoldKey, KeyState, foldhash::fast::RandomState>,
     /// Send times per subscriber within the cap window, oldest first.
     sent: BTreeMap<String, VecDeque<DateTime<Utc>>>,
 }
@@ -143,11 +145,15 @@ impl From<Policy> for Snapshot {
     fn from(p: Policy) -> Self {
         Snapshot {
             version: 1,
-            keys: p
-                .keys
-                .into_iter()
-                .map(|(key, state)| SnapshotKey { key, state })
-                .collect(),
+            keys: {
+                let mut keys: Vec<SnapshotKey> = p
+                    .keys
+                    .into_iter()
+                    .map(|(key, state)| SnapshotKey { key, state })
+                    .collect();
+                keys.sort_by(|a, b| a.key.cmp(&b.key));
+                keys
+            },
             sent: p
                 .sent
                 .into_iter()
@@ -212,7 +218,12 @@ impl Policy {
         }
 
         // 3. Hourly cap over a sliding window: count sends in (now - 1 h, now].
-        let sends = self.sent.entry(c.key.subscriber.clone()).or_default();
+        // Look up before inserting: the key's `String` is cloned only for a
+        // subscriber not seen yet.
+        let sends = match self.sent.get_mut(&c.key.subscriber) {
+            Some(q) => q,
+            None => self.sent.entry(c.key.subscriber.clone()).or_default(),
+        };
         while sends.front().is_some_and(|t| *t <= now - CAP_WINDOW) {
             sends.pop_front();
         }
@@ -228,7 +239,10 @@ impl Policy {
         }
         sends.push_back(now);
 
-        let ks = self.keys.entry(c.key.clone()).or_default();
+        let ks = match self.keys.get_mut(&c.key) {
+            Some(ks) => ks,
+            None => self.keys.entry(c.key.clone()).or_default(),
+        };
         let reason = match ks.last_sent {
             None => "first notice for this camera and species".to_owned(),
             Some(last) => format!(
@@ -261,11 +275,14 @@ impl Policy {
         &mut self,
         subscriber: &str,
     ) -> Vec<(FoldKey, Vec<FoldedEvent>)> {
-        self.keys
+        let mut out: Vec<(FoldKey, Vec<FoldedEvent>)> = self
+            .keys
             .iter_mut()
             .filter(|(k, ks)| k.subscriber == subscriber && !ks.folded.is_empty())
             .map(|(k, ks)| (k.clone(), std::mem::take(&mut ks.folded)))
-            .collect()
+            .collect();
+        out.sort_by(|a, b| a.0.cmp(&b.0));
+        out
     }
 
     /// Notices sent to `subscriber` in the hour up to `now`.

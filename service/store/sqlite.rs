@@ -908,7 +908,7 @@ mod tests {
         n.event_id = event.into();
         n.subscriber_id = subscriber.into();
         Output::Notice {
-            notice: Box::new(n),
+            notice: std::sync::Arc::new(n),
             reason: "first of its kind".into(),
             channels: vec![Channel::Email, Channel::Webhook],
         }

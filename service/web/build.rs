@@ -227,7 +227,7 @@ pub fn subscriber(
         .iter()
         .enumerate()
         .filter_map(|(i, site)| {
-            let inside = covered.iter().any(|(c, _)| *c == i);
+            let inside = covered.binary_search(&(i as u32)).is_ok();
             (inside || !own).then(|| MapSite {
                 deployment_id: site.deployment_id.clone(),
                 label: site.label().to_string(),
@@ -261,8 +261,10 @@ pub fn subscriber(
         watches: s.watches.iter().map(|w| watch_words(w, &names)).collect(),
         covered: covered
             .iter()
-            .map(|(i, d)| {
-                let site = &cfg.sites.sites[*i];
+            .map(|&i| {
+                let i = i as usize;
+                let site = &cfg.sites.sites[i];
+                let d = rules.distance_km(&s.area, i);
                 CoveredSite {
                     deployment_id: site.deployment_id.clone(),
                     label: site.label().to_string(),
