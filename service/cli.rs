@@ -138,6 +138,58 @@ pub enum Command {
     /// Print a CSV report of independent events, camera-nights and RAI per
     /// site, species and period. Reads the store only.
     Report(ReportArgs),
+    /// Publish synthetic observations of the invented demo district (or of
+    /// a grid of N sites) to a broker at a given rate, for load tests;
+    /// print what was published and the rate achieved.
+    Load(LoadArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct LoadArgs {
+    /// The broker (mqtt://HOST:PORT).
+    #[arg(long, value_name = "URL", default_value = "mqtt://127.0.0.1:1883")]
+    pub url: String,
+    /// Messages to publish (0: only write --write-sites).
+    #[arg(long, value_name = "N", default_value_t = 1000)]
+    pub count: u64,
+    /// Messages per second (default: as fast as the broker takes them).
+    #[arg(long, value_name = "MSGS_PER_S")]
+    pub rate: Option<f64>,
+    /// MQTT quality of service of the publishes.
+    #[arg(long, value_name = "0|1", default_value_t = 1, value_parser = clap::value_parser!(u8).range(0..=1))]
+    pub qos: u8,
+    /// Topic prefix.
+    #[arg(long, value_name = "P", default_value = "outrider")]
+    pub prefix: String,
+    /// Publish for a synthetic grid of N sites around the district
+    /// (ids KB-00000...) instead of the district's 16.
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..=100_000))]
+    pub grid_sites: Option<u64>,
+    /// Distance between neighbouring grid sites, km.
+    #[arg(long, value_name = "KM", default_value_t = 3.0)]
+    pub spacing_km: f64,
+    /// Write the sites as a Camtrap DP deployments CSV (for `[sites] file`).
+    #[arg(long, value_name = "FILE")]
+    pub write_sites: Option<PathBuf>,
+    /// Publish the hourly heartbeats too (default: observations only).
+    #[arg(long)]
+    pub heartbeats: bool,
+    /// Seed of the synthetic feed.
+    #[arg(long, value_name = "N", default_value_t = crate::load::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Put in front of every observationID (the same options at the same
+    /// hour otherwise give the same ids, which a daemon keeps once).
+    #[arg(long, value_name = "TEXT", default_value = "")]
+    pub id_prefix: String,
+    /// MQTT client id (default: outrider-load-<process id>).
+    #[arg(long, value_name = "ID")]
+    pub client_id: Option<String>,
+    /// QoS 1 publishes in flight at once.
+    #[arg(long, value_name = "N", default_value_t = 1000)]
+    pub inflight: u16,
+    /// Print the report as JSON.
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Debug, Args)]

@@ -36,6 +36,8 @@
 //! - [`web`]: the status page, JSON API, `/metrics`, health checks and
 //!   one-click unsubscribe (axum); its renderers are pure.
 //! - [`demo`]: the invented district's synthetic feed.
+//! - [`load`]: `outrider load`, that feed (or a grid of N sites) published
+//!   to a broker at a given rate, for load tests and benchmarks.
 //! - [`app`]: starts and stops the tasks in order.
 //! - [`backup`]: `outrider backup`, a checked online copy of the store.
 //! - [`outbox`]: sends due notices and digests, per-channel concurrency,
@@ -62,6 +64,7 @@ pub mod geo;
 pub mod import;
 pub mod ingest;
 pub mod interchange;
+pub mod load;
 pub mod model;
 pub mod notify;
 pub mod outbox;

@@ -175,6 +175,47 @@ fn run(cmd: Command) -> anyhow::Result<ExitCode> {
             let now = outrider::status::effective_now(&cfg.service.state_dir, SystemClock.now());
             outrider::report::run(&cfg, &a, now)?;
         }
+        Command::Load(a) => {
+            let now = SystemClock.now();
+            if !(a.spacing_km.is_finite() && a.spacing_km > 0.0 && a.spacing_km <= 100.0) {
+                anyhow::bail!("--spacing-km must be more than 0 and at most 100");
+            }
+            let grid = a.grid_sites.map(|n| n as usize);
+            if let Some(path) = &a.write_sites {
+                let n = outrider::load::write_sites(path, grid, a.spacing_km, now)?;
+                eprintln!("wrote {n} sites to {}", path.display());
+            }
+            if a.count == 0 {
+                return Ok(ExitCode::SUCCESS);
+            }
+            let opts = outrider::load::LoadOptions {
+                url: outrider::config::parse_mqtt_url(&a.url)
+                    .map_err(|e| anyhow::anyhow!("--url {:?}: {e}", a.url))?,
+                prefix: a.prefix,
+                client_id: a
+                    .client_id
+                    .unwrap_or_else(|| format!("outrider-load-{}", std::process::id())),
+                count: a.count,
+                rate: a.rate,
+                qos: if a.qos == 0 {
+                    rumqttc::QoS::AtMostOnce
+                } else {
+                    rumqttc::QoS::AtLeastOnce
+                },
+                grid_sites: grid,
+                spacing_km: a.spacing_km,
+                heartbeats: a.heartbeats,
+                seed: a.seed,
+                id_prefix: a.id_prefix,
+                inflight: a.inflight,
+            };
+            let report = runtime()?.block_on(outrider::load::run(&opts, now))?;
+            if a.json {
+                println!("{}", serde_json::to_string(&report)?);
+            } else {
+                println!("{}", report.text());
+            }
+        }
         Command::Backup {
             config,
             state_dir,

@@ -13,6 +13,7 @@ mod faults;
 mod hostile;
 mod ingest;
 mod interchange;
+mod load;
 mod notices;
 mod replay;
 mod secrets;

@@ -800,7 +800,8 @@ fn read_service(w: &mut Walker<'_, '_>, top: &mut Table<'_, '_>, base: &Path) ->
     ok.then_some(out)
 }
 
-fn parse_mqtt_url(s: &str) -> Result<MqttUrl, String> {
+/// Parses `mqtt://HOST[:PORT]` or `mqtts://HOST[:PORT]` (default ports 1883, 8883).
+pub fn parse_mqtt_url(s: &str) -> Result<MqttUrl, String> {
     let (tls, rest) = if let Some(r) = s.strip_prefix("mqtts://") {
         (true, r)
     } else if let Some(r) = s.strip_prefix("mqtt://") {

@@ -3,9 +3,10 @@
 //! Every name and number here is made up and stays in demo data.
 
 /// One camera site of the invented district.
+#[derive(Debug, Clone, PartialEq)]
 pub struct DemoSite {
-    pub id: &'static str,
-    pub name: &'static str,
+    pub id: String,
+    pub name: String,
     pub lat: f64,
     pub lon: f64,
 }
@@ -47,10 +48,33 @@ pub fn sites() -> Vec<DemoSite> {
         .map(|i| {
             let (row, col) = ((i / 4) as f64, (i % 4) as f64);
             DemoSite {
-                id: IDS[i],
-                name: NAMES[i],
+                id: IDS[i].to_string(),
+                name: NAMES[i].to_string(),
                 lat: round5(CENTRE.0 + (1.5 - row) * dlat),
                 lon: round5(CENTRE.1 + (col - 1.5) * dlon),
+            }
+        })
+        .collect()
+}
+
+/// A larger synthetic network for load tests: `n` sites on a square grid
+/// `spacing_km` apart, centred on the district (row by row, north-west
+/// first, the last row possibly short), with ids `KB-00000`, `KB-00001`, ...
+/// (five digits up to 100,000 sites). The demo's scripted happenings name
+/// the 16 district ids, so they do not occur on a grid.
+pub fn grid(n: usize, spacing_km: f64) -> Vec<DemoSite> {
+    let side = (1..).find(|s| s * s >= n).unwrap_or(1);
+    let dlat = spacing_km / 110.9;
+    let dlon = spacing_km / (111.32 * CENTRE.0.to_radians().cos());
+    let mid = (side as f64 - 1.0) / 2.0;
+    (0..n)
+        .map(|i| {
+            let (row, col) = ((i / side) as f64, (i % side) as f64);
+            DemoSite {
+                id: format!("KB-{i:05}"),
+                name: format!("Grid {}-{}", i / side + 1, i % side + 1),
+                lat: round5(CENTRE.0 + (mid - row) * dlat),
+                lon: round5(CENTRE.1 + (col - mid) * dlon),
             }
         })
         .collect()
@@ -178,4 +202,32 @@ pub fn hour_weight(rhythm: Rhythm, h: u32) -> f64 {
     };
     let total: f64 = (0..24).map(raw).sum();
     raw(h % 24) / total
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn grid_is_centred_and_spaced() {
+        let g = grid(10_000, 3.0);
+        assert_eq!(g.len(), 10_000);
+        assert_eq!(g[0].id, "KB-00000");
+        assert_eq!(g[9_999].id, "KB-09999");
+        let mean_lat = g.iter().map(|s| s.lat).sum::<f64>() / g.len() as f64;
+        let mean_lon = g.iter().map(|s| s.lon).sum::<f64>() / g.len() as f64;
+        assert!((mean_lat - CENTRE.0).abs() < 1e-4, "{mean_lat}");
+        assert!((mean_lon - CENTRE.1).abs() < 1e-4, "{mean_lon}");
+        // Neighbours in the middle row are 3 km apart (geodesic, to 1 %;
+        // the longitude step is set at the centre's latitude, so rows far
+        // north or south are a little wider or narrower).
+        let a = crate::geo::LatLon::new(g[5_050].lat, g[5_050].lon).unwrap();
+        let b = crate::geo::LatLon::new(g[5_051].lat, g[5_051].lon).unwrap();
+        let d = crate::geo::distance_m(a, b);
+        assert!((d - 3000.0).abs() < 30.0, "{d}");
+        // A count that is not a square leaves the last row short.
+        assert_eq!(grid(10, 3.0).len(), 10);
+        let ids: std::collections::BTreeSet<_> = g.iter().map(|s| s.id.clone()).collect();
+        assert_eq!(ids.len(), g.len());
+    }
 }

@@ -57,6 +57,12 @@ pub struct Feed {
     pub seed: u64,
     pub scenario: Scenario,
     pub tz: Tz,
+    /// Whether the hourly heartbeats are in the stream (a load test may
+    /// want observations only).
+    pub heartbeats: bool,
+    /// Put in front of every `observationID` (and `mediaID`), so that two
+    /// runs of a load test over the same hours do not collide.
+    pub id_prefix: String,
     sites: Vec<DemoSite>,
 }
 
@@ -84,14 +90,32 @@ fn poisson(rng: &mut SmallRng, lambda: f64) -> u32 {
 
 impl Feed {
     pub fn new(origin: DateTime<Utc>, prefix: impl Into<String>, seed: u64) -> Self {
+        Self::with_sites(origin, prefix, seed, sites())
+    }
+
+    /// The same feed over other sites (e.g. [`super::district::grid`]):
+    /// the demo's species, rates and rhythms at every site.
+    pub fn with_sites(
+        origin: DateTime<Utc>,
+        prefix: impl Into<String>,
+        seed: u64,
+        sites: Vec<DemoSite>,
+    ) -> Self {
         Self {
             origin,
             prefix: prefix.into(),
             seed,
             scenario: Scenario::default(),
             tz: chrono_tz::Australia::Sydney,
-            sites: sites(),
+            heartbeats: true,
+            id_prefix: String::new(),
+            sites,
         }
+    }
+
+    /// The sites the feed covers.
+    pub fn sites(&self) -> &[DemoSite] {
+        &self.sites
     }
 
     /// Every message whose time lies in `[from, to)`, in time order.
@@ -124,22 +148,26 @@ impl Feed {
         let mut rng = SmallRng::seed_from_u64(mix(self.seed
             ^ mix(idx as u64 + 1)
             ^ mix(h as u64 ^ 0xA5A5)));
-        // A heartbeat at a fixed minute of every hour.
-        let hb_at = start + Duration::minutes(7 + idx as i64);
+        // A heartbeat at a fixed minute of every hour (the same random
+        // draws either way, so leaving heartbeats out changes nothing else).
+        let hb_at = start + Duration::minutes(7 + (idx % 50) as i64);
         let battery = (100.0 - (h.max(0) as f64) * 0.05).max(5.0);
-        emit(FeedMessage {
-            at: hb_at,
-            topic: format!("{}/{}/heartbeat", self.prefix, site.id),
-            payload: json!({
-                "deploymentID": site.id,
-                "timestamp": hb_at.with_timezone(&self.tz).to_rfc3339(),
-                "batteryPercent": (battery * 10.0).round() / 10.0,
-                "signalDbm": -70 - (idx as i64 % 5) * 6,
-                "imagesSinceLast": rng.gen_range(0..12),
-            })
-            .to_string()
-            .into_bytes(),
-        });
+        let images: i32 = rng.gen_range(0..12);
+        if self.heartbeats {
+            emit(FeedMessage {
+                at: hb_at,
+                topic: format!("{}/{}/heartbeat", self.prefix, site.id),
+                payload: json!({
+                    "deploymentID": site.id,
+                    "timestamp": hb_at.with_timezone(&self.tz).to_rfc3339(),
+                    "batteryPercent": (battery * 10.0).round() / 10.0,
+                    "signalDbm": -70 - (idx as i64 % 5) * 6,
+                    "imagesSinceLast": images,
+                })
+                .to_string()
+                .into_bytes(),
+            });
+        }
         let local_hour = start.with_timezone(&self.tz).hour();
         for (si, sp) in SPECIES.iter().enumerate() {
             let mut rate = sp.rate_per_night;
@@ -191,7 +219,7 @@ impl Feed {
                 at,
                 topic: format!("{}/{}/observation", self.prefix, site.id),
                 payload: json!({
-                    "observationID": format!("{}-{h}-p", site.id),
+                    "observationID": format!("{}{}-{h}-p", self.id_prefix, site.id),
                     "deploymentID": site.id,
                     "eventStart": at.with_timezone(&self.tz).to_rfc3339(),
                     "observationType": "human",
@@ -221,7 +249,7 @@ impl Feed {
         let sp = &SPECIES[si];
         for t in 0..triggers {
             let when = at + Duration::seconds(60 * t as i64 + rng.gen_range(0..20));
-            let id = format!("{}-{h}-{si}-{k}-{t}", site.id);
+            let id = format!("{}{}-{h}-{si}-{k}-{t}", self.id_prefix, site.id);
             let prob: f64 = rng.gen_range(0.62..0.995);
             emit(FeedMessage {
                 at: when,

@@ -29,9 +29,15 @@ pub struct DemoOptions {
 
 /// The sites CSV of the invented district (Camtrap DP deployments columns).
 pub fn sites_csv(deployment_start: DateTime<Utc>) -> String {
+    deployments_csv(&district::sites(), deployment_start)
+}
+
+/// A sites CSV (Camtrap DP deployments columns) for any of the feed's
+/// sites, all deployed at `deployment_start` and still running.
+pub fn deployments_csv(sites: &[district::DemoSite], deployment_start: DateTime<Utc>) -> String {
     let tz = chrono_tz::Australia::Sydney;
     let mut s = String::from("deploymentID,locationID,locationName,latitude,longitude,deploymentStart,deploymentEnd,cameraID,cameraDelay\n");
-    for (i, site) in district::sites().iter().enumerate() {
+    for (i, site) in sites.iter().enumerate() {
         s.push_str(&format!(
             "{},L{:02},{},{},{},{},,CAM-{:03},60\n",
             site.id,
