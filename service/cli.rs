@@ -181,7 +181,7 @@ pub struct LoadArgs {
     /// hour otherwise give the same ids, which a daemon keeps once).
     #[arg(long, value_name = "TEXT", default_value = "")]
     pub id_prefix: String,
-    /// MQTT client id (default: outrider-load-<process id>).
+    /// MQTT client id (default: `outrider-load-<process id>`).
     #[arg(long, value_name = "ID")]
     pub client_id: Option<String>,
     /// QoS 1 publishes in flight at once.
