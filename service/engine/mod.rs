@@ -582,8 +582,8 @@ impl Engine {
         }
     }
 
-    /// The distance a notice of `sub` at `site` shows, km (cached; a config
-    /// reload builds a new engine).
+    /// The distance a notice of `sub` at `site` shows, km (cached: areas
+    /// and sites are fixed for the engine's life).
     fn distance_km(&mut self, sub: usize, site: usize) -> f64 {
         let key = (sub as u32, site as u32);
         if let Some(d) = self.distances.get(&key) {
