@@ -426,13 +426,10 @@ impl Engine {
             }
             return;
         }
-        let Some(series) = self
-            .ledger
-            .series_of(&id.deployment_id, &id.scientific_name)
-        else {
+        let Some(ek @ (series, _)) = self.key_of(&id) else {
             return;
         };
-        let meta = self.meta.entry((series, id.start)).or_default();
+        let meta = self.meta.entry(ek).or_default();
         let raised = probability(o) > meta.best_probability;
         meta.best_probability = meta.best_probability.max(probability(o));
         if meta.vernacular_name.is_none() {
@@ -458,7 +455,7 @@ impl Engine {
         };
         let best = self
             .meta
-            .get(&(series, id.start))
+            .get(&ek)
             .map(|m| m.best_probability)
             .unwrap_or(0.0);
         // (window hours, evidence): watches of one event share the test.
@@ -898,11 +895,7 @@ impl Engine {
             Vec::new()
         };
         let Candidate { event_id, .. } = cand;
-        let event_key = event.and_then(|e| {
-            self.ledger
-                .series_of(&e.deployment_id, &e.scientific_name)
-                .map(|series| (series, e.start))
-        });
+        let event_key = event.and_then(|e| self.key(&e.deployment_id, &e.scientific_name, e.start));
         let meta = event_key.and_then(|k| self.meta.get(&k));
         let notice = Notice {
             subscriber_id: s.id.clone(),
@@ -990,9 +983,13 @@ impl Engine {
 
     /// The engine's key of an event the ledger has a series for.
     fn key_of(&self, id: &EventId) -> Option<EventKey> {
+        self.key(&id.deployment_id, &id.scientific_name, id.start)
+    }
+
+    fn key(&self, deployment_id: &str, species: &str, start: DateTime<Utc>) -> Option<EventKey> {
         self.ledger
-            .series_of(&id.deployment_id, &id.scientific_name)
-            .map(|series| (series, id.start))
+            .series_of(deployment_id, species)
+            .map(|series| (series, start))
     }
 
     fn move_meta(&mut self, old: &EventId, new: &EventId) {
