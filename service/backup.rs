@@ -353,8 +353,13 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         store_with_rows(dir.path(), 2000);
         let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let started = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
         let writer = {
-            let (path, stop) = (crate::store::db_path(dir.path()), stop.clone());
+            let (path, stop, started) = (
+                crate::store::db_path(dir.path()),
+                stop.clone(),
+                started.clone(),
+            );
             std::thread::spawn(move || {
                 let conn = Connection::open(path).unwrap();
                 let mut n = 0;
@@ -362,10 +367,16 @@ mod tests {
                     conn.execute("INSERT INTO t (v) VALUES ('more')", [])
                         .unwrap();
                     n += 1;
+                    started.store(true, std::sync::atomic::Ordering::Relaxed);
                 }
                 n
             })
         };
+        // On a loaded machine the writer thread may not have run yet: the
+        // copy must start while it is writing, or there is nothing to test.
+        while !started.load(std::sync::atomic::Ordering::Relaxed) {
+            std::thread::yield_now();
+        }
         let to = dir.path().join("copy.db");
         let opts = Options {
             pages_per_step: 1,

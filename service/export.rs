@@ -136,7 +136,7 @@ fn export_cap(
                 .filter(|o| {
                     o.trigger != Trigger::Retraction
                         && o.subscriber_id == n.subscriber_id
-                        && o.event_id == incident(n)
+                        && *o.event_id == *incident(n)
                 })
                 .map(|o| CapReference {
                     sender: sender.clone(),
@@ -147,7 +147,7 @@ fn export_cap(
         } else {
             Vec::new()
         };
-        let sub = cfg.subscribers.iter().find(|s| s.id == n.subscriber_id);
+        let sub = cfg.subscribers.iter().find(|s| *s.id == *n.subscriber_id);
         let ctx = context_for(cfg, sub, &sender, &references);
         write_file(
             &dir.join(format!("{}.xml", n.id())),

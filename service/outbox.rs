@@ -301,7 +301,7 @@ async fn attempt(sh: &Shared, work: Work) {
     let (what, subscriber) = match &work {
         Work::Notice(d) => (
             d.notice.id().as_str().to_string(),
-            d.notice.subscriber_id.clone(),
+            d.notice.subscriber_id.to_string(),
         ),
         Work::Digest(d) => (d.digest.id(), d.digest.subscriber_id.clone()),
     };
@@ -575,7 +575,7 @@ pub fn channel_body(
 }
 
 fn subscriber<'c>(cfg: &'c Config, n: &Notice) -> Option<&'c Subscriber> {
-    cfg.subscribers.iter().find(|s| s.id == n.subscriber_id)
+    cfg.subscribers.iter().find(|s| *s.id == *n.subscriber_id)
 }
 
 async fn send(

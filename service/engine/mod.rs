@@ -37,6 +37,7 @@ use crate::activity::{cusum, CusumParams, CusumState, GammaRate};
 use crate::calendar::{local_date_of, local_day_bounds};
 use crate::config::{Config, TriggerKind};
 use crate::model::{Message, Observation, ObservationType};
+use crate::notify::notice::Text;
 use crate::notify::{Candidate, Decision, Disposition, Evidence, FoldKey, Notice, Policy};
 use chrono::{DateTime, Duration, NaiveDate, Utc};
 use rules::{RuleBook, TwilightCache};
@@ -75,8 +76,39 @@ type FastMap<K, V> = HashMap<K, V, foldhash::fast::RandomState>;
 #[derive(Debug, Clone, Default)]
 struct EventMeta {
     best_probability: f64,
-    vernacular_name: Option<String>,
-    file_path: Option<String>,
+    vernacular_name: Option<Text>,
+    file_path: Option<Text>,
+    /// The event's key text (`event_key`), made at its first decision.
+    key_text: Option<Text>,
+}
+
+/// The names a subscriber's decisions copy, made once (at its first
+/// decision) and shared by every notice after.
+#[derive(Debug)]
+struct SubscriberNames {
+    id: Text,
+    name: Text,
+    /// Per watch: its name and the `subscriber/watch` rule text.
+    watches: Vec<(Text, Text)>,
+}
+
+impl SubscriberNames {
+    fn of(s: &crate::config::Subscriber) -> Self {
+        SubscriberNames {
+            id: s.id.as_str().into(),
+            name: s.name.as_str().into(),
+            watches: s
+                .watches
+                .iter()
+                .map(|w| {
+                    (
+                        w.name.as_str().into(),
+                        [s.id.as_str(), "/", w.name.as_str()].concat().into(),
+                    )
+                })
+                .collect(),
+        }
+    }
 }
 
 /// Working state of the core. Build with [`Engine::new`], warm with
@@ -96,6 +128,13 @@ pub struct Engine {
     sent_for: FastMap<EventKey, Vec<Arc<Notice>>>,
     /// Civil twilight per site and date, for dusk-to-dawn watches.
     twilight: TwilightCache,
+    /// Per subscriber, its names as shared text (`None` until its first
+    /// decision: most of a million subscribers may never get one).
+    names: Vec<Option<Arc<SubscriberNames>>>,
+    /// Per site: deployment id and label as shared text.
+    site_names: Vec<(Text, Text)>,
+    /// Scientific names as shared text.
+    species_names: std::collections::HashSet<Text, foldhash::fast::RandomState>,
     /// (subscriber, site) -> the distance a notice shows, km, worked out
     /// at the first notice (the rule book keeps membership only).
     distances: FastMap<(u32, u32), f64>,
@@ -105,6 +144,10 @@ pub struct Engine {
     /// Regional rate cache: (species, baseline window end hour) -> rate.
     regional: HashMap<(String, i64), f64>,
     last_prune: Option<DateTime<Utc>>,
+    /// Prunes done, for the weekly full sweep.
+    prunes: u32,
+    /// See [`Engine::horizon`].
+    horizon: Duration,
     /// While warming, nothing is notified (history is being loaded).
     quiet: bool,
     options: Options,
@@ -128,6 +171,10 @@ pub struct Engine {
 /// under way is not forgotten by a restart.
 const CUSUM_WARM_DAYS: i64 = 14;
 
+/// Prunes (one per 6 hours of message time) between full sweeps of the
+/// engine's per-event records: a week.
+const FULL_SWEEP_EVERY: u32 = 28;
+
 /// How the engine runs.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct Options {
@@ -149,6 +196,11 @@ impl Engine {
 
     pub fn with_options(cfg: Arc<Config>, options: Options) -> Self {
         let rules = RuleBook::compile(&cfg);
+        let site_names = rules
+            .sites()
+            .iter()
+            .map(|s| (s.deployment_id.as_str().into(), s.label().into()))
+            .collect();
         let silence = effort_silence(&cfg, options);
         let uptime = cfg
             .sites
@@ -166,11 +218,16 @@ impl Engine {
             decided: Default::default(),
             sent_for: FastMap::default(),
             twilight: TwilightCache::default(),
+            names: vec![None; cfg.subscribers.len()],
+            site_names,
+            species_names: Default::default(),
             distances: FastMap::default(),
             silent: HashMap::new(),
             policy: Policy::new(),
             regional: HashMap::new(),
             last_prune: None,
+            prunes: 0,
+            horizon: Self::horizon_of(&cfg),
             quiet: false,
             options,
             species_override: None,
@@ -187,9 +244,15 @@ impl Engine {
     /// How far back the working set must reach: the longest baseline or
     /// quiet-days look-back, plus margin.
     pub fn horizon(&self) -> Duration {
-        let b = &self.cfg.baseline;
+        self.horizon
+    }
+
+    /// [`Engine::horizon`] worked out from the config (once: it walks every
+    /// watch, and a prune every 6 hours asks for it).
+    fn horizon_of(cfg: &Config) -> Duration {
+        let b = &cfg.baseline;
         let mut days = i64::from(b.window_days + b.guard_days) + 4;
-        for s in &self.cfg.subscribers {
+        for s in &cfg.subscribers {
             for w in &s.watches {
                 days = days.max(i64::from(w.quiet_days) + 1).max(
                     i64::from(b.window_days + b.guard_days) + i64::from(w.window_hours) / 24 + 2,
@@ -232,14 +295,14 @@ impl Engine {
                 .cfg
                 .subscribers
                 .iter()
-                .position(|s| s.id == n.subscriber_id)
+                .position(|s| *s.id == *n.subscriber_id)
             else {
                 continue;
             };
             let Some(wi) = self.cfg.subscribers[sub]
                 .watches
                 .iter()
-                .position(|w| w.name == n.watch)
+                .position(|w| *w.name == *n.watch)
             else {
                 continue;
             };
@@ -284,8 +347,8 @@ impl Engine {
                 (T::Spike, Some(species)) => self
                     .ledger
                     .event_summary(&EventId {
-                        deployment_id: n.deployment_id.clone(),
-                        scientific_name: species.clone(),
+                        deployment_id: n.deployment_id.to_string(),
+                        scientific_name: species.to_string(),
                         start: n.event_time,
                     })
                     .map(|e| e.count),
@@ -386,7 +449,8 @@ impl Engine {
                         "silence-ended:{}:{}",
                         self.rules.site(site).deployment_id,
                         rfc(since)
-                    ),
+                    )
+                    .into(),
                     at,
                     ev,
                     now,
@@ -433,10 +497,10 @@ impl Engine {
         let raised = probability(o) > meta.best_probability;
         meta.best_probability = meta.best_probability.max(probability(o));
         if meta.vernacular_name.is_none() {
-            meta.vernacular_name.clone_from(&o.vernacular_name);
+            meta.vernacular_name = o.vernacular_name.as_deref().map(Text::from);
         }
         if meta.file_path.is_none() {
-            meta.file_path.clone_from(&o.file_path);
+            meta.file_path = o.file_path.as_deref().map(Text::from);
         }
         if self.quiet {
             return;
@@ -462,6 +526,8 @@ impl Engine {
         let mut spike_cache: Vec<(u32, Option<SpikeEvidence>)> = Vec::new();
         let cfg = Arc::clone(&self.cfg);
         let ncovering = self.rules.covering(site).len();
+        // Room for a decision per covering subscriber, grown once.
+        out.reserve(ncovering);
         for ci in 0..ncovering {
             let sub = self.rules.covering(site)[ci] as usize;
             for (wi, w) in cfg.subscribers[sub].watches.iter().enumerate() {
@@ -562,7 +628,7 @@ impl Engine {
                     }
                 };
                 self.decided.insert(decided_key);
-                let event_id = event_key(&id);
+                let event_id = self.key_text(ek, &id);
                 self.decide(
                     sub,
                     wi,
@@ -738,7 +804,7 @@ impl Engine {
                     site,
                     crate::notify::Trigger::Silence,
                     None,
-                    event_id,
+                    event_id.into(),
                     last,
                     ev,
                     now,
@@ -834,7 +900,7 @@ impl Engine {
                         site,
                         crate::notify::Trigger::BuildUp,
                         None,
-                        event_id,
+                        event_id.into(),
                         from,
                         ev,
                         now,
@@ -854,7 +920,7 @@ impl Engine {
         site: usize,
         trigger: crate::notify::Trigger,
         event: Option<&IndependentEvent>,
-        event_id: String,
+        event_id: Text,
         event_time: DateTime<Utc>,
         mut evidence: Evidence,
         now: DateTime<Utc>,
@@ -862,17 +928,25 @@ impl Engine {
     ) {
         let s = &self.cfg.subscribers[sub];
         let w = &s.watches[wi];
+        let names =
+            Arc::clone(self.names[sub].get_or_insert_with(|| Arc::new(SubscriberNames::of(s))));
+        let (watch_name, rule) = &names.watches[wi];
         let site_info = self.rules.site(site);
-        let species = event
-            .map(|e| e.scientific_name.clone())
-            .or_else(|| self.species_override.take());
-        evidence.rule = Some([s.id.as_str(), "/", w.name.as_str()].concat());
+        let (deployment, site_label) = &self.site_names[site];
+        let species = match event {
+            Some(e) => Some(intern(&mut self.species_names, &e.scientific_name)),
+            None => self
+                .species_override
+                .take()
+                .map(|sp| intern(&mut self.species_names, &sp)),
+        };
+        evidence.rule = Some(Arc::clone(rule));
         evidence.clock_time = Some(now);
         let key = FoldKey {
-            subscriber: s.id.clone(),
-            watch: w.name.clone(),
-            deployment: site_info.deployment_id.clone(),
-            species: species.clone().unwrap_or_default(),
+            subscriber: Arc::clone(&names.id),
+            watch: Arc::clone(watch_name),
+            deployment: Arc::clone(deployment),
+            species: species.clone().unwrap_or_else(|| Text::from("")),
         };
         let in_quiet_hours = s
             .quiet_hours
@@ -898,13 +972,13 @@ impl Engine {
         let event_key = event.and_then(|e| self.key(&e.deployment_id, &e.scientific_name, e.start));
         let meta = event_key.and_then(|k| self.meta.get(&k));
         let notice = Notice {
-            subscriber_id: s.id.clone(),
-            subscriber_name: s.name.clone(),
-            watch: w.name.clone(),
+            subscriber_id: Arc::clone(&names.id),
+            subscriber_name: Arc::clone(&names.name),
+            watch: Arc::clone(watch_name),
             urgent: w.urgent,
             trigger,
-            deployment_id: site_info.deployment_id.clone(),
-            site_label: site_info.label().to_string(),
+            deployment_id: Arc::clone(deployment),
+            site_label: Arc::clone(site_label),
             latitude: site_info.latitude,
             longitude: site_info.longitude,
             scientific_name: species,
@@ -928,9 +1002,15 @@ impl Engine {
         }
         out.push(Output::Notice {
             notice,
-            reason: decision.reason().to_string(),
+            reason: decision.into_reason(),
             channels: w.channels.clone(),
         });
+    }
+
+    /// The key text of event `ek` (`event_key`), made once per event.
+    fn key_text(&mut self, ek: EventKey, id: &EventId) -> Text {
+        let meta = self.meta.entry(ek).or_default();
+        Arc::clone(meta.key_text.get_or_insert_with(|| event_key(id).into()))
     }
 
     /// Records an event change; returns events that were removed outright.
@@ -1029,12 +1109,12 @@ impl Engine {
                 .cfg
                 .subscribers
                 .iter()
-                .find(|s| s.id == n.subscriber_id)
-                .and_then(|s| s.watches.iter().find(|w| w.name == n.watch))
+                .find(|s| *s.id == *n.subscriber_id)
+                .and_then(|s| s.watches.iter().find(|w| *w.name == *n.watch))
                 .map(|w| w.channels.clone())
                 .unwrap_or_default();
             n.trigger = crate::notify::Trigger::Retraction;
-            n.event_id = format!("{}:retracted:{observation_id}", n.event_id);
+            n.event_id = format!("{}:retracted:{observation_id}", n.event_id).into();
             n.at = now;
             n.disposition = Disposition::Sent;
             n.folded.clear();
@@ -1054,17 +1134,39 @@ impl Engine {
         {
             return;
         }
+        self.prune(now);
+    }
+
+    /// Forgets what lies before the working horizon at `now`; returns the
+    /// events forgotten. [`Engine::apply`] does this by itself every 6
+    /// hours of message time; the benchmarks call it between timed rounds
+    /// to measure it apart from the cost of a trigger.
+    pub fn prune(&mut self, now: DateTime<Utc>) -> usize {
         self.last_prune = Some(now);
         let cutoff = now - self.horizon();
-        self.ledger.prune_before(cutoff);
-        self.meta.retain(|(_, start), _| *start >= cutoff);
+        // What the ledger forgets, the engine forgets, key by key: a walk
+        // over every event's record at each prune was a tenth of the cost
+        // of a trigger. Records of events that went another way (a
+        // retraction, a split) are swept by a full walk once a week. (An
+        // event is kept while the ledger holds it, its whole span.)
+        let (meta, sent_for) = (&mut self.meta, &mut self.sent_for);
+        let forgotten = self.ledger.prune_before_each(cutoff, |series, start| {
+            meta.remove(&(series, start));
+            sent_for.remove(&(series, start));
+        });
+        self.prunes = self.prunes.wrapping_add(1);
+        if self.prunes % FULL_SWEEP_EVERY == 0 {
+            let ledger = &self.ledger;
+            self.meta.retain(|(se, st), _| ledger.holds(*se, *st));
+            self.sent_for.retain(|(se, st), _| ledger.holds(*se, *st));
+        }
         self.decided = self
             .decided
             .split_off(&(cutoff.timestamp_millis(), 0, 0, 0));
-        self.sent_for.retain(|(_, start), _| *start >= cutoff);
         self.pending
             .retain(|_, v| v.iter().any(|(at, _)| *at >= cutoff));
         self.policy.prune(now);
+        forgotten
     }
 }
 
@@ -1193,6 +1295,21 @@ fn push_rfc(s: &mut String, t: DateTime<Utc>) {
     // A leap second (nanosecond >= 1e9) is written as :60, as chrono does.
     two(s, t.second() + u32::from(t.nanosecond() >= 1_000_000_000));
     s.push('Z');
+}
+
+/// `name` as shared text, made once per name.
+fn intern(
+    set: &mut std::collections::HashSet<Text, foldhash::fast::RandomState>,
+    name: &str,
+) -> Text {
+    match set.get(name) {
+        Some(t) => Arc::clone(t),
+        None => {
+            let t = Text::from(name);
+            set.insert(Arc::clone(&t));
+            t
+        }
+    }
 }
 
 fn round2(v: f64) -> f64 {

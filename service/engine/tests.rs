@@ -416,7 +416,7 @@ fn decisions(out: &[Output]) -> Vec<(String, Disposition, Vec<String>)> {
     notices(out)
         .into_iter()
         .map(|(n, _)| {
-            let held = n.folded.iter().map(|f| f.event_id.clone()).collect();
+            let held = n.folded.iter().map(|f| f.event_id.to_string()).collect();
             (n.id().as_str().to_string(), n.disposition, held)
         })
         .collect()

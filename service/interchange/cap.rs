@@ -549,7 +549,7 @@ mod tests {
         // A retraction cancels, names the incident and the earlier alert.
         let mut r = sample();
         r.trigger = Trigger::Retraction;
-        r.event_id = format!("{}:retracted:o17", r.event_id);
+        r.event_id = format!("{}:retracted:o17", r.event_id).into();
         let refs = [CapReference {
             sender: "outrider@outrider.kellerby.example".into(),
             identifier: sample().id().to_string(),

@@ -106,6 +106,12 @@ impl fmt::Display for Disposition {
     }
 }
 
+/// Shared, immutable text: what notices, fold keys and the engine's
+/// name tables hold, so that copying a name into a decision is a
+/// reference-count increment, not an allocation (a decision is made for
+/// every matched watch). Serialises as a plain JSON string.
+pub type Text = std::sync::Arc<str>;
+
 /// The figures behind a notice, kept exactly (the email words them).
 ///
 /// Fields that do not apply to a trigger are `None` and left out of the
@@ -159,7 +165,7 @@ pub struct Evidence {
     pub silent_hours: Option<f64>,
     /// The rule that fired, `subscriber/watch`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub rule: Option<String>,
+    pub rule: Option<Text>,
     /// The clock time when the rule was evaluated (the simulated clock in
     /// replay).
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -179,7 +185,7 @@ pub enum DistanceFrom {
 /// One earlier event carried by a notice (it arrived during a cooldown).
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 pub struct FoldedEvent {
-    pub event_id: String,
+    pub event_id: Text,
     pub event_time: DateTime<Utc>,
     /// Animals in the event (largest count seen).
     pub count: u32,
@@ -244,25 +250,25 @@ impl fmt::Display for NoticeId {
 /// (names, labels, URLs) are kept as received; the renderers clean them.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Notice {
-    pub subscriber_id: String,
+    pub subscriber_id: Text,
     /// Display name of the subscriber (config `name`).
-    pub subscriber_name: String,
+    pub subscriber_name: Text,
     /// The watch's name (config `subscriber.watch.name`).
-    pub watch: String,
+    pub watch: Text,
     /// Whether the watch is urgent (passes quiet hours).
     #[serde(default)]
     pub urgent: bool,
     pub trigger: Trigger,
-    pub deployment_id: String,
+    pub deployment_id: Text,
     /// Site label (Camtrap DP `locationName`, e.g. "Swamp Corner").
-    pub site_label: String,
+    pub site_label: Text,
     pub latitude: f64,
     pub longitude: f64,
     /// `None` for camera notices (silence, silence-ended).
-    pub scientific_name: Option<String>,
-    pub vernacular_name: Option<String>,
+    pub scientific_name: Option<Text>,
+    pub vernacular_name: Option<Text>,
     /// The triggering event's id (for a camera notice, the silence episode).
-    pub event_id: String,
+    pub event_id: Text,
     /// Start of the triggering event (for silence: the last sign of life).
     pub event_time: DateTime<Utc>,
     /// Decision time.
@@ -270,7 +276,7 @@ pub struct Notice {
     pub disposition: Disposition,
     pub evidence: Evidence,
     /// Link to the image (`filePath` of the observation), if any.
-    pub image_url: Option<String>,
+    pub image_url: Option<Text>,
     /// Earlier events of the same camera and species folded into this one,
     /// oldest first.
     #[serde(default)]

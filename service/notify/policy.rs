@@ -29,7 +29,7 @@ use chrono::{DateTime, Duration, Utc};
 use serde::{Deserialize, Serialize};
 use std::collections::{BTreeMap, HashMap, VecDeque};
 
-use crate::notify::notice::{Disposition, FoldedEvent};
+use crate::notify::notice::{Disposition, FoldedEvent, Text};
 
 /// The sliding window of the hourly cap.
 const CAP_WINDOW: Duration = Duration::hours(1);
@@ -38,10 +38,10 @@ const CAP_WINDOW: Duration = Duration::hours(1);
 /// species (empty for camera notices).
 #[derive(Debug, Clone, PartialEq, Eq, Hash, PartialOrd, Ord, Serialize, Deserialize)]
 pub struct FoldKey {
-    pub subscriber: String,
-    pub watch: String,
-    pub deployment: String,
-    pub species: String,
+    pub subscriber: Text,
+    pub watch: Text,
+    pub deployment: Text,
+    pub species: Text,
 }
 
 /// One candidate notice, as the rules produced it, with the settings that
@@ -50,7 +50,7 @@ pub struct FoldKey {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Candidate {
     pub key: FoldKey,
-    pub event_id: String,
+    pub event_id: Text,
     pub event_time: DateTime<Utc>,
     /// Animals in the event.
     pub count: u32,
@@ -81,6 +81,15 @@ pub enum Decision {
 }
 
 impl Decision {
+    /// The reason, moved out (no copy).
+    pub fn into_reason(self) -> String {
+        match self {
+            Self::SendNow { reason }
+            | Self::Fold { reason, .. }
+            | Self::DeferToDigest { reason } => reason,
+        }
+    }
+
     pub fn reason(&self) -> &str {
         match self {
             Self::SendNow { reason }
@@ -123,7 +132,9 @@ pub struct Policy {
     /// the few places that need an order sort.
     keys: HashMap<FoldKey, KeyState, foldhash::fast::RandomState>,
     /// Send times per subscriber within the cap window, oldest first.
-    sent: BTreeMap<String, VecDeque<DateTime<Utc>>>,
+    /// Hashed too: with a million subscribers an ordered map's walk of
+    /// string comparisons made the cost per decision grow with their number.
+    sent: HashMap<Text, VecDeque<DateTime<Utc>>, foldhash::fast::RandomState>,
 }
 
 /// The serialised form: JSON maps need string keys, so keys are a list.
@@ -131,7 +142,7 @@ pub struct Policy {
 struct Snapshot {
     version: u32,
     keys: Vec<SnapshotKey>,
-    sent: BTreeMap<String, Vec<DateTime<Utc>>>,
+    sent: BTreeMap<Text, Vec<DateTime<Utc>>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -278,7 +289,7 @@ impl Policy {
         let mut out: Vec<(FoldKey, Vec<FoldedEvent>)> = self
             .keys
             .iter_mut()
-            .filter(|(k, ks)| k.subscriber == subscriber && !ks.folded.is_empty())
+            .filter(|(k, ks)| *k.subscriber == *subscriber && !ks.folded.is_empty())
             .map(|(k, ks)| (k.clone(), std::mem::take(&mut ks.folded)))
             .collect();
         out.sort_by(|a, b| a.0.cmp(&b.0));
@@ -344,8 +355,33 @@ impl Policy {
     }
 }
 
+/// `2026-07-14 16:05 UTC`. Written by hand: chrono's `format` parses its
+/// pattern on every call, and every folded or capped candidate's reason
+/// names one or two instants (a test checks it against chrono).
 fn hm_utc(t: DateTime<Utc>) -> String {
-    t.format("%Y-%m-%d %H:%M UTC").to_string()
+    use chrono::{Datelike, Timelike};
+    let year = t.year();
+    if !(0..=9999).contains(&year) {
+        return t.format("%Y-%m-%d %H:%M UTC").to_string();
+    }
+    let mut s = String::with_capacity(20);
+    let two = |s: &mut String, v: u32| {
+        s.push(char::from(b'0' + (v / 10) as u8));
+        s.push(char::from(b'0' + (v % 10) as u8));
+    };
+    let y = year as u32;
+    two(&mut s, y / 100);
+    two(&mut s, y % 100);
+    s.push('-');
+    two(&mut s, t.month());
+    s.push('-');
+    two(&mut s, t.day());
+    s.push(' ');
+    two(&mut s, t.hour());
+    s.push(':');
+    two(&mut s, t.minute());
+    s.push_str(" UTC");
+    s
 }
 
 #[cfg(test)]
@@ -353,6 +389,16 @@ mod tests {
     use super::*;
     use crate::notify::notice::tests::utc;
     use proptest::prelude::*;
+
+    proptest! {
+        /// Reference: chrono's strftime (`%Y-%m-%d %H:%M UTC`), over years
+        /// 0-9999 and beyond, where the hand-written path hands over.
+        #[test]
+        fn hm_utc_matches_chrono(secs in -70_000_000_000i64..260_000_000_000i64) {
+            let t = DateTime::from_timestamp(secs, 0).unwrap();
+            prop_assert_eq!(hm_utc(t), t.format("%Y-%m-%d %H:%M UTC").to_string());
+        }
+    }
 
     fn key(sub: &str, dep: &str) -> FoldKey {
         FoldKey {
@@ -418,10 +464,7 @@ mod tests {
         assert!(is_send(&d), "{d:?}");
         let folded = p.take_folded(&k);
         assert_eq!(
-            folded
-                .iter()
-                .map(|f| f.event_id.as_str())
-                .collect::<Vec<_>>(),
+            folded.iter().map(|f| &*f.event_id).collect::<Vec<_>>(),
             ["e2", "e3"]
         );
         assert_eq!(folded[0].event_time, t1);
@@ -590,7 +633,7 @@ mod tests {
             let k = key(sub, &format!("KB-0{}", which % 3 + 1));
             let c = Candidate {
                 key: k.clone(),
-                event_id: format!("ev{}", first_index + i),
+                event_id: format!("ev{}", first_index + i).into(),
                 event_time: t,
                 count: 1,
                 urgent,
@@ -617,7 +660,7 @@ mod tests {
             for sub in ["stonecroft", "wattle-downs"] {
                 let sends: Vec<DateTime<Utc>> = out
                     .iter()
-                    .filter(|(_, k, d)| k.subscriber == sub && is_send(d))
+                    .filter(|(_, k, d)| *k.subscriber == *sub && is_send(d))
                     .map(|(t, _, _)| *t)
                     .collect();
                 // The busiest 60-minute window [a, a + 60 min) starts at a send.
@@ -682,7 +725,7 @@ mod tests {
             let (mut got, t) = run(&mut first, &s[..cut], start, cooldown, cap, 0);
             let mut restored = Policy::new();
             for (i, (at, k, d)) in got.iter().enumerate() {
-                let folded = FoldedEvent { event_id: format!("ev{i}"), event_time: *at, count: 1 };
+                let folded = FoldedEvent { event_id: format!("ev{i}").into(), event_time: *at, count: 1 };
                 restored.restore(k, d.disposition(), *at, folded, cooldown);
             }
             let (rest, _) = run(&mut restored, &s[cut..], t, cooldown, cap, cut);
@@ -714,7 +757,11 @@ mod tests {
         );
         let t3 = t0 + Duration::minutes(121);
         assert!(is_send(&p.on_candidate(&cand(&k, "e4", t3), t3)));
-        let held: Vec<String> = p.take_folded(&k).into_iter().map(|f| f.event_id).collect();
+        let held: Vec<String> = p
+            .take_folded(&k)
+            .into_iter()
+            .map(|f| f.event_id.to_string())
+            .collect();
         assert_eq!(held, ["e2", "e3"]);
     }
 }

@@ -874,7 +874,7 @@ mod tests {
             .iter()
             .enumerate()
             .map(|(i, &(h, m))| FoldedEvent {
-                event_id: format!("e{i}"),
+                event_id: format!("e{i}").into(),
                 event_time: utc(2025, 7, 14, h, m),
                 count: 1,
             })

@@ -48,14 +48,14 @@ impl Summary {
     }
 
     pub fn count(&mut self, n: &Notice) {
-        let i = match self.index.get(&n.subscriber_id) {
+        let i = match self.index.get(&*n.subscriber_id) {
             Some(i) => *i,
             None => {
                 // Not in the config (cannot happen: notices come from its
                 // watches); listed anyway rather than dropped.
-                self.subscribers.push(n.subscriber_id.clone());
+                self.subscribers.push(n.subscriber_id.to_string());
                 self.index
-                    .insert(n.subscriber_id.clone(), self.subscribers.len() - 1);
+                    .insert(n.subscriber_id.to_string(), self.subscribers.len() - 1);
                 self.subscribers.len() - 1
             }
         };

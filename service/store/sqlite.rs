@@ -988,7 +988,7 @@ mod tests {
             .unwrap();
         let of = |sub: &str, ch: &str| {
             due.iter()
-                .find(|d| d.notice.subscriber_id == sub && d.channel == ch)
+                .find(|d| *d.notice.subscriber_id == *sub && d.channel == ch)
                 .map(|d| d.unsubscribed_at)
         };
         assert_eq!(of("stonecroft", "email"), Some(Some(at)));

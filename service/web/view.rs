@@ -93,14 +93,14 @@ impl NoticeView {
         let line = n.replay_line();
         NoticeView {
             id: n.id().as_str().to_string(),
-            subscriber: n.subscriber_id.clone(),
+            subscriber: n.subscriber_id.to_string(),
             subscriber_name: crate::notify::header_safe(&n.subscriber_name),
             watch: crate::notify::header_safe(&n.watch),
             trigger: n.trigger.as_str().to_string(),
             disposition: n.disposition.as_str().to_string(),
             reason: row.reason.clone(),
-            deployment_id: n.deployment_id.clone(),
-            scientific_name: n.scientific_name.clone(),
+            deployment_id: n.deployment_id.to_string(),
+            scientific_name: n.scientific_name.as_deref().map(str::to_string),
             at: n.at,
             at_local: crate::notify::render::local_time(n.at, tz),
             headline: w.headline,
