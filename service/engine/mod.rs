@@ -290,13 +290,17 @@ impl Engine {
     /// or watch no longer in the config are skipped.
     pub fn restore<'a>(&mut self, notices: impl IntoIterator<Item = &'a Notice>) {
         use crate::notify::Trigger as T;
+        // Subscribers by id, looked up per notice (a walk of the list per
+        // notice is quadratic at start-up with many subscribers).
+        let cfg = Arc::clone(&self.cfg);
+        let by_id: FastMap<&str, usize> = cfg
+            .subscribers
+            .iter()
+            .enumerate()
+            .map(|(i, s)| (s.id.as_str(), i))
+            .collect();
         for n in notices {
-            let Some(sub) = self
-                .cfg
-                .subscribers
-                .iter()
-                .position(|s| *s.id == *n.subscriber_id)
-            else {
+            let Some(&sub) = by_id.get(&*n.subscriber_id) else {
                 continue;
             };
             let Some(wi) = self.cfg.subscribers[sub]
