@@ -144,8 +144,6 @@ pub struct Engine {
     /// Regional rate cache: (species, baseline window end hour) -> rate.
     regional: HashMap<(String, i64), f64>,
     last_prune: Option<DateTime<Utc>>,
-    /// Prunes done, for the weekly full sweep.
-    prunes: u32,
     /// See [`Engine::horizon`].
     horizon: Duration,
     /// While warming, nothing is notified (history is being loaded).
@@ -170,10 +168,6 @@ pub struct Engine {
 /// Days of history the CUSUM runs over quietly at start, so a build-up
 /// under way is not forgotten by a restart.
 const CUSUM_WARM_DAYS: i64 = 14;
-
-/// Prunes (one per 6 hours of message time) between full sweeps of the
-/// engine's per-event records: a week.
-const FULL_SWEEP_EVERY: u32 = 28;
 
 /// How the engine runs.
 #[derive(Debug, Clone, Copy, Default)]
@@ -226,7 +220,6 @@ impl Engine {
             policy: Policy::new(),
             regional: HashMap::new(),
             last_prune: None,
-            prunes: 0,
             horizon: Self::horizon_of(&cfg),
             quiet: false,
             options,
@@ -322,7 +315,11 @@ impl Engine {
                         .as_ref()
                         .and_then(|sp| self.ledger.series_of(&n.deployment_id, sp))
                     {
-                        if n.disposition == Disposition::Sent {
+                        // Only for an event the ledger holds: pruning
+                        // forgets records with the ledger's events.
+                        if n.disposition == Disposition::Sent
+                            && self.ledger.holds(series, n.event_time)
+                        {
                             self.sent_for
                                 .entry((series, n.event_time))
                                 .or_default()
@@ -1044,6 +1041,11 @@ impl Engine {
             Change::Split { old, new } => {
                 if !new.contains(old) {
                     out.push(Output::EventDelete(old.clone()));
+                    // Nothing can reach the old start's records again.
+                    if let Some(k) = self.key_of(old) {
+                        self.meta.remove(&k);
+                        self.sent_for.remove(&k);
+                    }
                 }
                 for n in new {
                     upsert(self, n, out);
@@ -1051,6 +1053,10 @@ impl Engine {
             }
             Change::Removed(id) => {
                 out.push(Output::EventDelete(id.clone()));
+                // Its sent notices stay for the caller's follow-up.
+                if let Some(k) = self.key_of(id) {
+                    self.meta.remove(&k);
+                }
                 removed.push(id.clone());
             }
             Change::Relabelled {
@@ -1150,20 +1156,13 @@ impl Engine {
         let cutoff = now - self.horizon();
         // What the ledger forgets, the engine forgets, key by key: a walk
         // over every event's record at each prune was a tenth of the cost
-        // of a trigger. Records of events that went another way (a
-        // retraction, a split) are swept by a full walk once a week. (An
-        // event is kept while the ledger holds it, its whole span.)
+        // of a trigger. (Events that went another way, removed or split,
+        // are dropped where the change is stored.)
         let (meta, sent_for) = (&mut self.meta, &mut self.sent_for);
         let forgotten = self.ledger.prune_before_each(cutoff, |series, start| {
             meta.remove(&(series, start));
             sent_for.remove(&(series, start));
         });
-        self.prunes = self.prunes.wrapping_add(1);
-        if self.prunes % FULL_SWEEP_EVERY == 0 {
-            let ledger = &self.ledger;
-            self.meta.retain(|(se, st), _| ledger.holds(*se, *st));
-            self.sent_for.retain(|(se, st), _| ledger.holds(*se, *st));
-        }
         self.decided = self
             .decided
             .split_off(&(cutoff.timestamp_millis(), 0, 0, 0));
