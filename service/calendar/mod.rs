@@ -18,8 +18,10 @@
 //! # Layout
 //! - [`window`]: [`Hours`], [`LocalHours`], [`Season`], [`WindowError`].
 //! - [`local`]: local-time resolution, day buckets, next occurrence.
+//! - [`text`]: instants written as text without chrono's formatter.
 
 pub mod local;
+pub mod text;
 pub mod window;
 
 pub use local::{local_date_of, local_day_bounds, next_occurrence, resolve_local};

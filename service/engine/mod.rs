@@ -1273,30 +1273,15 @@ fn rfc(t: DateTime<Utc>) -> String {
 /// as `to_rfc3339_opts(SecondsFormat::Secs, true)` writes it, without the
 /// formatting machinery (event keys are built for every decision).
 fn push_rfc(s: &mut String, t: DateTime<Utc>) {
-    use chrono::{Datelike, Timelike};
-    let y = t.year();
-    if !(0..=9999).contains(&y) {
+    use crate::calendar::text::{push_two, push_utc_minutes};
+    use chrono::Timelike;
+    if !push_utc_minutes(s, t, 'T') {
         s.push_str(&t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true));
         return;
     }
-    let two = |s: &mut String, v: u32| {
-        s.push(char::from(b'0' + (v / 10) as u8));
-        s.push(char::from(b'0' + (v % 10) as u8));
-    };
-    let y = y as u32;
-    two(s, y / 100);
-    two(s, y % 100);
-    s.push('-');
-    two(s, t.month());
-    s.push('-');
-    two(s, t.day());
-    s.push('T');
-    two(s, t.hour());
-    s.push(':');
-    two(s, t.minute());
     s.push(':');
     // A leap second (nanosecond >= 1e9) is written as :60, as chrono does.
-    two(s, t.second() + u32::from(t.nanosecond() >= 1_000_000_000));
+    push_two(s, t.second() + u32::from(t.nanosecond() >= 1_000_000_000));
     s.push('Z');
 }
 

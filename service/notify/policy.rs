@@ -359,27 +359,10 @@ impl Policy {
 /// pattern on every call, and every folded or capped candidate's reason
 /// names one or two instants (a test checks it against chrono).
 fn hm_utc(t: DateTime<Utc>) -> String {
-    use chrono::{Datelike, Timelike};
-    let year = t.year();
-    if !(0..=9999).contains(&year) {
+    let mut s = String::with_capacity(20);
+    if !crate::calendar::text::push_utc_minutes(&mut s, t, ' ') {
         return t.format("%Y-%m-%d %H:%M UTC").to_string();
     }
-    let mut s = String::with_capacity(20);
-    let two = |s: &mut String, v: u32| {
-        s.push(char::from(b'0' + (v / 10) as u8));
-        s.push(char::from(b'0' + (v % 10) as u8));
-    };
-    let y = year as u32;
-    two(&mut s, y / 100);
-    two(&mut s, y % 100);
-    s.push('-');
-    two(&mut s, t.month());
-    s.push('-');
-    two(&mut s, t.day());
-    s.push(' ');
-    two(&mut s, t.hour());
-    s.push(':');
-    two(&mut s, t.minute());
     s.push_str(" UTC");
     s
 }
